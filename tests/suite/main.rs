@@ -1,0 +1,4 @@
+//! The one integration-test binary: every module below drives the library or the real CLI.
+//! External checks name their published source beside the numbers.
+
+mod common;
