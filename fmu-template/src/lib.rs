@@ -1,1 +1,8 @@
+//! understudy-runtime: everything that must run inside an exported FMU — unit models, the
+//! integrators, and (later) the block-model interpreter and the correction's state update.
+//! It knows nothing of fitting, plotting or the command line.
+
+#![deny(clippy::float_cmp)]
+
 pub mod ode;
+pub mod unit;

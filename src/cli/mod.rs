@@ -1,0 +1,104 @@
+//! Subcommands, one file each; each is thin and calls one library function.
+
+mod demo;
+mod init;
+mod simulate;
+
+use clap::{Parser, Subcommand};
+use indicatif::{ProgressBar, ProgressDrawTarget, ProgressStyle};
+use std::path::PathBuf;
+use understudy::Error;
+
+#[derive(Debug, Parser)]
+#[command(
+    name = "understudy",
+    version,
+    about = "Fast, validated stand-in models of converter-connected generators for grid studies"
+)]
+pub struct Cli {
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+pub enum Command {
+    /// Run the main job on the embedded demo plant.
+    Demo {
+        /// Output folder.
+        #[arg(long, default_value = "understudy-demo")]
+        out: PathBuf,
+        /// No progress bar, only the summary.
+        #[arg(long)]
+        quiet: bool,
+        /// Print the summary as JSON.
+        #[arg(long)]
+        json: bool,
+    },
+    /// Write a commented study file.
+    Init {
+        /// Where to write it.
+        #[arg(default_value = "study.toml")]
+        file: PathBuf,
+        /// Replace an existing file.
+        #[arg(long)]
+        force: bool,
+    },
+    /// Generate fault-response traces from a detailed model.
+    Simulate {
+        /// Study file (default: the embedded demo study).
+        #[arg(long)]
+        study: Option<PathBuf>,
+        /// `full-converter`, `doubly-fed` or `fmu:PATH` (default: the study's unit).
+        #[arg(long)]
+        unit: Option<String>,
+        /// Number of cases (overrides the study).
+        #[arg(long)]
+        cases: Option<usize>,
+        /// Seed of the scenario design (overrides the study).
+        #[arg(long)]
+        seed: Option<u64>,
+        /// Output folder for the traces.
+        #[arg(long)]
+        out: PathBuf,
+        /// No progress bar.
+        #[arg(long)]
+        quiet: bool,
+    },
+}
+
+pub fn run(cli: Cli) -> Result<i32, Error> {
+    match cli.command {
+        Command::Demo { out, quiet, json } => demo::run(&out, quiet, json),
+        Command::Init { file, force } => init::run(&file, force),
+        Command::Simulate {
+            study,
+            unit,
+            cases,
+            seed,
+            out,
+            quiet,
+        } => simulate::run(simulate::Request {
+            study,
+            unit,
+            cases,
+            seed,
+            out,
+            quiet,
+        }),
+    }
+}
+
+/// A progress bar on stderr (hidden when quiet or when stderr is not a terminal).
+pub fn progress_bar(total: usize, label: &str, quiet: bool) -> ProgressBar {
+    let bar = ProgressBar::new(total as u64);
+    if quiet {
+        bar.set_draw_target(ProgressDrawTarget::hidden());
+    }
+    bar.set_style(
+        ProgressStyle::with_template("{prefix:>10} [{bar:30}] {pos}/{len} {elapsed_precise}")
+            .expect("static template")
+            .progress_chars("=> "),
+    );
+    bar.set_prefix(label.to_string());
+    bar
+}

@@ -1,0 +1,2 @@
+//! Signals: traces of fault responses, their files, and recordings.
+pub mod trace;
