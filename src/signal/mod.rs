@@ -1,0 +1,4 @@
+//! Recorded and simulated signals: COMTRADE exchange files and phasor extraction.
+
+pub mod comtrade;
+pub mod phasor;
