@@ -98,8 +98,14 @@ pub enum OdeError {
     NewtonFailed { t_s: f64, step_s: f64 },
     #[error("state became non-finite at t = {t_s} s")]
     NonFinite { t_s: f64 },
-    #[error("guard {guard} fired {count} times at t = {t_s} s without time advancing (chattering)")]
-    Chattering { t_s: f64, guard: usize, count: usize },
+    #[error(
+        "guard {guard} fired {count} times at t = {t_s} s without time advancing (chattering)"
+    )]
+    Chattering {
+        t_s: f64,
+        guard: usize,
+        count: usize,
+    },
 }
 
 /// Integrate `sys` from `t0_s` to `t_end_s`, starting from `x` (overwritten with the final
@@ -115,6 +121,15 @@ pub fn integrate<S: HybridSystem>(
     method: &Method,
     observe: impl FnMut(f64, &[f64], &S),
 ) -> Result<Stats, OdeError> {
-    let _ = (sys, x, t0_s, t_end_s, sample_step_s, breakpoints_s, method, observe);
+    let _ = (
+        sys,
+        x,
+        t0_s,
+        t_end_s,
+        sample_step_s,
+        breakpoints_s,
+        method,
+        observe,
+    );
     unimplemented!("integrator being written")
 }

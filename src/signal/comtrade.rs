@@ -127,9 +127,8 @@ impl ComtradeTimestamp {
             i64::from(self.month),
             i64::from(self.day),
         );
-        let seconds_of_day = i64::from(self.hour) * 3600
-            + i64::from(self.minute) * 60
-            + i64::from(self.second);
+        let seconds_of_day =
+            i64::from(self.hour) * 3600 + i64::from(self.minute) * 60 + i64::from(self.second);
         (i128::from(days) * 86_400 + i128::from(seconds_of_day)) * 1_000_000_000
             + i128::from(self.nanosecond)
     }
@@ -579,15 +578,14 @@ pub fn read_cff(path: &Path) -> Result<Recording> {
                         parse_ascii_data(path, &cfg, &lines, line_number)?
                     } else {
                         let count_text = byte_count.unwrap_or_default();
-                        let count: usize = count_text.parse().map_err(|_| {
-                            ComtradeError::BadField {
+                        let count: usize =
+                            count_text.parse().map_err(|_| ComtradeError::BadField {
                                 path: path.to_path_buf(),
                                 line: line_number,
                                 field: "DAT byte count".to_string(),
                                 found: count_text.clone(),
                                 expected: "a non-negative integer".to_string(),
-                            }
-                        })?;
+                            })?;
                         let available = bytes.len() - next;
                         if count > available {
                             let row = binary_row_bytes(&cfg);
@@ -776,12 +774,7 @@ impl FieldReader<'_> {
     }
 }
 
-fn field_count_error(
-    path: &Path,
-    line: &CfgLine,
-    what: &str,
-    expected: &str,
-) -> ComtradeError {
+fn field_count_error(path: &Path, line: &CfgLine, what: &str, expected: &str) -> ComtradeError {
     ComtradeError::FieldCount {
         path: path.to_path_buf(),
         line: line.number,
@@ -986,7 +979,11 @@ fn parse_cfg(path: &Path, lines: &[&str], line_offset: usize) -> Result<Cfg> {
     let mut rates = Vec::with_capacity(nrates);
     let mut total_samples = 0u64;
     for index in 0..nrates.max(1) {
-        let what = format!("sample rate {} of {}: samp,endsamp", index + 1, nrates.max(1));
+        let what = format!(
+            "sample rate {} of {}: samp,endsamp",
+            index + 1,
+            nrates.max(1)
+        );
         let line = cursor.next_line(&what)?;
         if line.fields.len() != 2 {
             return Err(field_count_error(path, &line, &what, "2"));
@@ -1022,15 +1019,13 @@ fn parse_cfg(path: &Path, lines: &[&str], line_offset: usize) -> Result<Cfg> {
 
     // ft
     let line = cursor.next_line("data file type ft")?;
-    let format = DataFormat::from_keyword(&line.fields[0]).ok_or_else(|| {
-        ComtradeError::UnknownFormat {
+    let format =
+        DataFormat::from_keyword(&line.fields[0]).ok_or_else(|| ComtradeError::UnknownFormat {
             path: path.to_path_buf(),
             line: line.number,
             found: line.fields.join(","),
-        }
-    })?;
-    if matches!(format, DataFormat::Binary32 | DataFormat::Float32) && revision != Revision::R2013
-    {
+        })?;
+    if matches!(format, DataFormat::Binary32 | DataFormat::Float32) && revision != Revision::R2013 {
         return Err(ComtradeError::FormatNeedsRevision2013 {
             path: path.to_path_buf(),
             line: line.number,
@@ -1238,12 +1233,7 @@ impl SampleLocations {
 
 /// ASCII data file (C37.111-1999): `n,timestamp,A1..Ak,D1..Dm` per line.
 /// `line_offset` is the number of file lines before `lines[0]`.
-fn parse_ascii_data(
-    path: &Path,
-    cfg: &Cfg,
-    lines: &[&str],
-    line_offset: usize,
-) -> Result<RawData> {
+fn parse_ascii_data(path: &Path, cfg: &Cfg, lines: &[&str], line_offset: usize) -> Result<RawData> {
     let analog_count = cfg.analog.len();
     let status_count = cfg.status.len();
     let expected_fields = 2 + analog_count + status_count;
@@ -1314,7 +1304,10 @@ fn parse_ascii_data(
             let raw = if text.is_empty() || (missing_is_99999 && *text == ASCII_MISSING) {
                 f64::NAN
             } else {
-                fr.real(&format!("A{} ({})", channel + 1, cfg.analog[channel].name), text)?
+                fr.real(
+                    &format!("A{} ({})", channel + 1, cfg.analog[channel].name),
+                    text,
+                )?
             };
             data.analog[channel].push(raw);
         }
@@ -1363,7 +1356,7 @@ fn parse_binary_data(path: &Path, cfg: &Cfg, bytes: &[u8], file_offset: usize) -
     let samples = cfg.total_samples;
     let expected = samples * row_bytes;
     if bytes.len() != expected {
-        if bytes.len() < expected && bytes.len() % row_bytes == 0 {
+        if bytes.len() < expected && bytes.len().is_multiple_of(row_bytes) {
             return Err(ComtradeError::Truncated {
                 path: path.to_path_buf(),
                 expected: samples,
@@ -1394,7 +1387,8 @@ fn parse_binary_data(path: &Path, cfg: &Cfg, bytes: &[u8], file_offset: usize) -
             status: status_count,
         });
     }
-    let u32_at = |at: usize| u32::from_le_bytes([bytes[at], bytes[at + 1], bytes[at + 2], bytes[at + 3]]);
+    let u32_at =
+        |at: usize| u32::from_le_bytes([bytes[at], bytes[at + 1], bytes[at + 2], bytes[at + 3]]);
     let mut data = RawData {
         sample_numbers: Vec::with_capacity(samples),
         timestamps: Vec::with_capacity(samples),
@@ -1625,7 +1619,10 @@ pub fn write_comtrade(
     path: &Path,
     config: &ComtradeWriteConfig,
 ) -> Result<Vec<PathBuf>> {
-    let extension = path.extension().and_then(|e| e.to_str()).unwrap_or_default();
+    let extension = path
+        .extension()
+        .and_then(|e| e.to_str())
+        .unwrap_or_default();
     let is_cff = match extension.to_ascii_lowercase().as_str() {
         "cfg" => false,
         "cff" => true,
@@ -1697,7 +1694,7 @@ fn validate_recording(recording: &Recording, path: &Path) -> Result<()> {
         )));
     }
     if let Some(i) = (1..samples).find(|&i| {
-        !(recording.times_s[i] > recording.times_s[i - 1]) || !recording.times_s[i].is_finite()
+        recording.times_s[i] <= recording.times_s[i - 1] || !recording.times_s[i].is_finite()
     }) {
         return Err(invalid(format!(
             "times_s must increase strictly: sample {i} at {} s follows {} s",
@@ -1782,7 +1779,10 @@ fn validate_recording(recording: &Recording, path: &Path) -> Result<()> {
         }
     }
     if recording.time_quality.len() != 1
-        || !recording.time_quality.chars().all(|c| c.is_ascii_hexdigit())
+        || !recording
+            .time_quality
+            .chars()
+            .all(|c| c.is_ascii_hexdigit())
     {
         return Err(invalid(format!(
             "time_quality `{}` is not one hexadecimal digit",
@@ -1844,7 +1844,7 @@ impl TimePlan {
         };
         let trigger = recording.start.plus_seconds(recording.trigger_s);
         let nanosecond_stamps = revision == Revision::R2013
-            && (start.nanosecond % 1000 != 0 || trigger.nanosecond % 1000 != 0);
+            && (!start.nanosecond.is_multiple_of(1000) || !trigger.nanosecond.is_multiple_of(1000));
         let timebase_s = if nanosecond_stamps { 1e-9 } else { 1e-6 };
         let span_units = (times[n - 1] - shift).abs() / timebase_s;
         let limit = f64::from(u32::MAX - 1);
@@ -1855,7 +1855,11 @@ impl TimePlan {
         };
         let stamps = times
             .iter()
-            .map(|t| ((t - shift) / (timebase_s * timemult)).round().clamp(0.0, limit) as u32)
+            .map(|t| {
+                ((t - shift) / (timebase_s * timemult))
+                    .round()
+                    .clamp(0.0, limit) as u32
+            })
             .collect();
         TimePlan {
             rate_hz,
@@ -2134,7 +2138,8 @@ fn write_atomically(path: &Path, bytes: &[u8]) -> Result<()> {
     let temporary = directory.join(format!(".{file_name}.{}.partial", std::process::id()));
     let result = (|| {
         let mut file = fs::File::create(&temporary).map_err(io_error("create", &temporary))?;
-        file.write_all(bytes).map_err(io_error("write", &temporary))?;
+        file.write_all(bytes)
+            .map_err(io_error("write", &temporary))?;
         file.sync_all().map_err(io_error("flush", &temporary))?;
         drop(file);
         fs::rename(&temporary, path).map_err(io_error("rename into place", path))
@@ -2155,7 +2160,17 @@ mod tests {
         // + 59 days of Jan–Feb 2000 + 1 leap day)
         assert_eq!(days_from_civil(2000, 3, 1), 11_017);
         assert_eq!(days_from_civil(1970, 1, 1), 0);
-        for days in [-800_000i64, -1, 0, 59, 60, 11_016, 11_017, 20_000, 2_932_896] {
+        for days in [
+            -800_000i64,
+            -1,
+            0,
+            59,
+            60,
+            11_016,
+            11_017,
+            20_000,
+            2_932_896,
+        ] {
             let (y, m, d) = civil_from_days(days);
             assert_eq!(days_from_civil(y, m, d), days);
         }
@@ -2203,7 +2218,9 @@ mod tests {
 
     #[test]
     fn integer_encoding_error_is_at_most_half_a_step() {
-        let values: Vec<f64> = (0..200).map(|i| (i as f64 * 0.37).sin() * 311.0 + 4.0).collect();
+        let values: Vec<f64> = (0..200)
+            .map(|i| (i as f64 * 0.37).sin() * 311.0 + 4.0)
+            .collect();
         for format in [DataFormat::Ascii, DataFormat::Binary, DataFormat::Binary32] {
             let enc = EncodedChannel::new(&values, format);
             for (v, raw) in values.iter().zip(&enc.integers) {
@@ -2211,6 +2228,32 @@ mod tests {
                 assert!((back - v).abs() <= 0.5 * enc.a * (1.0 + 1e-9), "{format:?}");
             }
         }
+    }
+
+    #[test]
+    fn uniform_times_not_starting_at_zero_move_the_start_stamp() {
+        let times: Vec<f64> = (0..8).map(|i| 0.5 + i as f64 * 0.01).collect();
+        let mut rec = Recording::new("S", "D", 60.0, times);
+        rec.analog.push(AnalogChannel::new(
+            "X",
+            "A",
+            (0..8).map(f64::from).collect(),
+        ));
+        rec.trigger_s = 0.53;
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("shifted.cfg");
+        let config = ComtradeWriteConfig::new(Revision::R2013)
+            .unwrap()
+            .with_format(DataFormat::Float32)
+            .unwrap();
+        write_comtrade(&rec, &path, &config).unwrap();
+        let back = read_comtrade(&path).unwrap();
+        assert_eq!(back.start, ComtradeTimestamp::EPOCH.plus_seconds(0.5));
+        assert!((back.trigger_s - 0.03).abs() < 1e-9, "{}", back.trigger_s);
+        for (i, t) in back.times_s.iter().enumerate() {
+            assert!((t - i as f64 * 0.01).abs() < 1e-12);
+        }
+        assert_eq!(back.analog[0].values, rec.analog[0].values);
     }
 
     #[test]

@@ -144,7 +144,11 @@ impl SequenceComponents {
     /// Symmetrical components of phases A, B, C (C. L. Fortescue, "Method of symmetrical
     /// co-ordinates applied to the solution of polyphase networks", AIEE Trans. 1918):
     /// V0 = (Va + Vb + Vc)/3, V1 = (Va + a·Vb + a²·Vc)/3, V2 = (Va + a²·Vb + a·Vc)/3.
-    pub fn from_phases(a_phase: Complex<f64>, b_phase: Complex<f64>, c_phase: Complex<f64>) -> Self {
+    pub fn from_phases(
+        a_phase: Complex<f64>,
+        b_phase: Complex<f64>,
+        c_phase: Complex<f64>,
+    ) -> Self {
         let a = fortescue_a();
         let a2 = a * a;
         SequenceComponents {
@@ -197,7 +201,11 @@ pub fn sequence_phasors(
 }
 
 /// Times `start_s, start_s + 1/rate, …` up to `end_s` (inclusive, with a 1e-9-sample tolerance).
-pub fn uniform_grid(start_s: f64, end_s: f64, sample_rate_hz: f64) -> Result<Vec<f64>, PhasorError> {
+pub fn uniform_grid(
+    start_s: f64,
+    end_s: f64,
+    sample_rate_hz: f64,
+) -> Result<Vec<f64>, PhasorError> {
     if !(sample_rate_hz.is_finite() && sample_rate_hz > 0.0) {
         return Err(PhasorError::Setting {
             setting: "sample_rate_hz",
@@ -242,7 +250,9 @@ pub fn resample_linear(
             found: times_s.len(),
         });
     }
-    if let Some(i) = (1..times_s.len()).find(|&i| !(times_s[i] > times_s[i - 1])) {
+    if let Some(i) = (1..times_s.len())
+        .find(|&i| times_s[i] <= times_s[i - 1] || times_s[i].is_nan() || times_s[i - 1].is_nan())
+    {
         return Err(PhasorError::NonIncreasingTimes {
             index: i,
             time_s: times_s[i],
@@ -351,7 +361,10 @@ mod tests {
         let line: Vec<f64> = times.iter().map(|t| 3.0 * t - 1.0).collect();
         let grid = uniform_grid(0.0, 1.0, 7.0).unwrap();
         assert_eq!(grid.len(), 8);
-        for (t, v) in grid.iter().zip(resample_linear(&times, &line, &grid).unwrap()) {
+        for (t, v) in grid
+            .iter()
+            .zip(resample_linear(&times, &line, &grid).unwrap())
+        {
             assert!((v - (3.0 * t - 1.0)).abs() < 1e-14);
         }
         // linear interpolation error ≤ h²/8 · max|f''| (textbook bound; f = sin, |f''| ≤ 1)
@@ -359,7 +372,10 @@ mod tests {
         let times: Vec<f64> = (0..=200).map(|i| i as f64 * h).collect();
         let sine: Vec<f64> = times.iter().map(|t| t.sin()).collect();
         let grid = uniform_grid(0.0, 10.0, 33.0).unwrap();
-        for (t, v) in grid.iter().zip(resample_linear(&times, &sine, &grid).unwrap()) {
+        for (t, v) in grid
+            .iter()
+            .zip(resample_linear(&times, &sine, &grid).unwrap())
+        {
             assert!((v - t.sin()).abs() <= h * h / 8.0 + 1e-15);
         }
         assert!(matches!(

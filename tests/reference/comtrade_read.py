@@ -1,9 +1,9 @@
 """Independent reader check: load a COMTRADE record with the PyPI `comtrade` package.
 
-stdin:  {"path": ".cfg or .cff path", "dat": optional .dat path}
-stdout: {"station", "device", "rev_year", "ft", "analog_ids", "analog_phases", "analog_units",
-         "status_ids", "analog": [[value or null]], "status": [[0/1]], "time": [s],
-         "trigger_time": s, "frequency": Hz, "total_samples": n}
+stdin:  {"paths": [".cfg or .cff path", ...]}  (a .cfg's .dat is the one beside it)
+stdout: {"records": [one per path: {"station", "device", "rev_year", "ft", "analog_ids",
+         "analog_phases", "analog_units", "status_ids", "analog": [[value or null]], "status": [[0/1]], "time": [s],
+         "trigger_time": s, "frequency": Hz, "total_samples": n}]}
 
 Reference library: comtrade (PyPI, IEEE C37.111 reader), `Comtrade().load(cfg, dat)`.
 Missing samples (NaN) are sent as null because JSON has no NaN.
@@ -20,10 +20,9 @@ def clean(values):
     return [None if (isinstance(v, float) and math.isnan(v)) else float(v) for v in values]
 
 
-def main():
-    request = json.load(sys.stdin)
+def read(path):
     record = comtrade.Comtrade(use_double_precision=True, ignore_warnings=True)
-    record.load(request["path"], request.get("dat"))
+    record.load(path)
     cfg = record.cfg
     answer = {
         "station": record.station_name,
@@ -41,7 +40,12 @@ def main():
         "frequency": float(record.frequency),
         "total_samples": int(record.total_samples),
     }
-    json.dump(answer, sys.stdout)
+    return answer
+
+
+def main():
+    request = json.load(sys.stdin)
+    json.dump({"records": [read(path) for path in request["paths"]]}, sys.stdout)
 
 
 if __name__ == "__main__":

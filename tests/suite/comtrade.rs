@@ -46,11 +46,11 @@ fn write_pair(dir: &Path, stem: &str, cfg: &str, dat: &[u8]) -> PathBuf {
     cfg_path
 }
 
-fn reference_read(path: &Path) -> Option<serde_json::Value> {
-    common::run_reference(
-        "comtrade_read.py",
-        &serde_json::json!({ "path": path.to_str().unwrap() }),
-    )
+/// Read files with the reference reader, one Python run for all (each run costs seconds).
+fn reference_read(paths: &[PathBuf]) -> Option<Vec<serde_json::Value>> {
+    let paths: Vec<&str> = paths.iter().map(|p| p.to_str().unwrap()).collect();
+    let answer = common::run_reference("comtrade_read.py", &serde_json::json!({ "paths": paths }))?;
+    Some(answer["records"].as_array().unwrap().clone())
 }
 
 fn json_f64s(value: &serde_json::Value) -> Vec<f64> {
@@ -92,7 +92,8 @@ fn worked_example_1999_ascii_scales_and_marks_missing() {
     assert_eq!(rec.status[0].circuit, "BRK1");
 
     // the same file through the reference reader (PyPI comtrade)
-    if let Some(r) = reference_read(&cfg) {
+    if let Some(records) = reference_read(&[cfg]) {
+        let r = &records[0];
         let py_va = json_f64s(&r["analog"][0]);
         assert!(py_va[3].is_nan());
         for (got, want) in va[..3].iter().zip(&py_va[..3]) {
@@ -187,6 +188,7 @@ fn quantisation_bound(values: &[f64], format: DataFormat) -> f64 {
     }
 }
 
+/// Our reader on a file our writer made: the original within the quantisation bound.
 fn check_round_trip(original: &Recording, path: &Path, format: DataFormat, revision: Revision) {
     let label = format!("{} {:?}", path.display(), format);
     let back = read_comtrade(path).unwrap_or_else(|e| panic!("{label}: {e}"));
@@ -198,7 +200,10 @@ fn check_round_trip(original: &Recording, path: &Path, format: DataFormat, revis
         // uniform times are written as a rate; non-uniform as µs time stamps (writer docs)
         assert!((got - want).abs() <= 5e-7, "{label}: time {got} vs {want}");
     }
-    assert!((back.trigger_s - original.trigger_s).abs() < 1e-6, "{label}");
+    assert!(
+        (back.trigger_s - original.trigger_s).abs() < 1e-6,
+        "{label}"
+    );
     assert_eq!(back.start, original.start, "{label}");
     for (b, o) in back.analog.iter().zip(&original.analog) {
         assert_eq!(b.name, o.name);
@@ -210,7 +215,11 @@ fn check_round_trip(original: &Recording, path: &Path, format: DataFormat, revis
         let bound = quantisation_bound(&o.values, format);
         for (i, (got, want)) in b.values.iter().zip(&o.values).enumerate() {
             if want.is_nan() {
-                assert!(got.is_nan(), "{label} {} sample {i}: {got} not missing", o.name);
+                assert!(
+                    got.is_nan(),
+                    "{label} {} sample {i}: {got} not missing",
+                    o.name
+                );
             } else {
                 assert!(
                     (got - want).abs() <= bound,
@@ -221,17 +230,18 @@ fn check_round_trip(original: &Recording, path: &Path, format: DataFormat, revis
         }
     }
     assert_eq!(back.status, original.status, "{label}");
+}
 
-    // The reference reader (PyPI comtrade) must read the very same numbers from the file.
-    let Some(r) = reference_read(path) else {
-        return;
-    };
-    assert_eq!(r["station"], original.station.as_str(), "{label}");
-    assert_eq!(r["device"], original.device.as_str(), "{label}");
+/// The reference reader (PyPI comtrade) must read the very same numbers from the file as ours.
+fn check_reference(path: &Path, r: &serde_json::Value, format: DataFormat, revision: Revision) {
+    let label = format!("{} {:?} (reference reader)", path.display(), format);
+    let back = read_comtrade(path).unwrap();
+    assert_eq!(r["station"], back.station.as_str(), "{label}");
+    assert_eq!(r["device"], back.device.as_str(), "{label}");
     assert_eq!(r["rev_year"], revision.year(), "{label}");
     assert_eq!(r["ft"], format.keyword(), "{label}");
     assert_eq!(r["total_samples"], back.times_s.len(), "{label}");
-    assert!((r["frequency"].as_f64().unwrap() - 50.0).abs() < 1e-12);
+    assert!((r["frequency"].as_f64().unwrap() - back.nominal_frequency_hz).abs() < 1e-12);
     let names: Vec<&str> = back.analog.iter().map(|c| c.name.as_str()).collect();
     assert_eq!(r["analog_ids"], serde_json::json!(names), "{label}");
     let phases: Vec<&str> = back.analog.iter().map(|c| c.phase.as_str()).collect();
@@ -241,7 +251,10 @@ fn check_round_trip(original: &Recording, path: &Path, format: DataFormat, revis
     let status_names: Vec<&str> = back.status.iter().map(|c| c.name.as_str()).collect();
     assert_eq!(r["status_ids"], serde_json::json!(status_names), "{label}");
     for (t_ours, t_ref) in back.times_s.iter().zip(json_f64s(&r["time"])) {
-        assert!((t_ours - t_ref).abs() <= 1e-12, "{label}: time {t_ours} vs {t_ref}");
+        assert!(
+            (t_ours - t_ref).abs() <= 1e-12,
+            "{label}: time {t_ours} vs {t_ref}"
+        );
     }
     assert!(
         (r["trigger_time"].as_f64().unwrap() - back.trigger_s).abs() <= 1e-6,
@@ -251,7 +264,11 @@ fn check_round_trip(original: &Recording, path: &Path, format: DataFormat, revis
         // written as primary values (PS = P), so the package's a·x + b is our value
         for (ours, theirs) in channel.values.iter().zip(json_f64s(py)) {
             if ours.is_nan() {
-                assert!(theirs.is_nan(), "{label} {}: missing vs {theirs}", channel.name);
+                assert!(
+                    theirs.is_nan(),
+                    "{label} {}: missing vs {theirs}",
+                    channel.name
+                );
             } else {
                 assert!(
                     (ours - theirs).abs() <= 1e-12 * ours.abs().max(1.0),
@@ -290,6 +307,7 @@ fn written_files_read_back_identically_here_and_in_the_reference_reader() {
         (Revision::R2013, DataFormat::Binary32, "cff"),
         (Revision::R2013, DataFormat::Float32, "cff"),
     ];
+    let mut written_paths = Vec::new();
     for (revision, format, extension) in cases {
         let config = ComtradeWriteConfig::new(revision)
             .unwrap()
@@ -303,6 +321,14 @@ fn written_files_read_back_identically_here_and_in_the_reference_reader() {
         let written = write_comtrade(&rec, &path, &config).unwrap();
         assert_eq!(written.len(), if extension == "cfg" { 2 } else { 1 });
         check_round_trip(&rec, &path, format, revision);
+        written_paths.push(path);
+    }
+    if let Some(records) = reference_read(&written_paths) {
+        for ((revision, format, _), (path, r)) in
+            cases.iter().zip(written_paths.iter().zip(&records))
+        {
+            check_reference(path, r, *format, *revision);
+        }
     }
     // no temporary files left behind by the atomic writes
     let leftovers: Vec<_> = std::fs::read_dir(dir.path())
@@ -317,23 +343,39 @@ fn written_files_read_back_identically_here_and_in_the_reference_reader() {
 fn non_uniform_times_are_written_as_critical_time_stamps() {
     // nrates = 0: times come from the data-file stamps × timemult (C37.111-1999)
     let times: Vec<f64> = (0..40)
-        .map(|i| if i < 20 { i as f64 * 1e-3 } else { 0.019 + (i - 19) as f64 * 2.5e-4 })
+        .map(|i| {
+            if i < 20 {
+                i as f64 * 1e-3
+            } else {
+                0.019 + (i - 19) as f64 * 2.5e-4
+            }
+        })
         .collect();
     let rec = sample_recording(times);
     let dir = tempfile::tempdir().unwrap();
-    for (revision, format) in [
+    let cases = [
         (Revision::R1999, DataFormat::Binary),
         (Revision::R2013, DataFormat::Ascii),
-    ] {
+    ];
+    let mut paths = Vec::new();
+    for (revision, format) in cases {
         let config = ComtradeWriteConfig::new(revision)
             .unwrap()
             .with_format(format)
             .unwrap();
-        let path = dir.path().join(format!("nonuniform_{}.cfg", revision.year()));
+        let path = dir
+            .path()
+            .join(format!("nonuniform_{}.cfg", revision.year()));
         write_comtrade(&rec, &path, &config).unwrap();
         let cfg_text = std::fs::read_to_string(&path).unwrap();
         assert!(cfg_text.contains("\r\n0\r\n0,40\r\n"), "{cfg_text}");
         check_round_trip(&rec, &path, format, revision);
+        paths.push(path);
+    }
+    if let Some(records) = reference_read(&paths) {
+        for ((revision, format), (path, r)) in cases.iter().zip(paths.iter().zip(&records)) {
+            check_reference(path, r, *format, *revision);
+        }
     }
 }
 
@@ -341,10 +383,16 @@ fn non_uniform_times_are_written_as_critical_time_stamps() {
 fn hand_made_binary32_and_float32_cff_files_read() {
     // Built byte by byte per C37.111-2013 (not by our writer): one analog channel, two status
     // channels, 3 samples; rows of n: u32, timestamp: u32, value, one status word (LE).
+    let dir = tempfile::tempdir().unwrap();
+    let mut paths = Vec::new();
     for (format, raw) in [
         (
             "BINARY32",
-            [100i32.to_le_bytes(), (-200i32).to_le_bytes(), i32::MIN.to_le_bytes()],
+            [
+                100i32.to_le_bytes(),
+                (-200i32).to_le_bytes(),
+                i32::MIN.to_le_bytes(),
+            ],
         ),
         (
             "FLOAT32",
@@ -371,10 +419,11 @@ fn hand_made_binary32_and_float32_cff_files_read() {
         cff.extend_from_slice(b"--- file type: CFG ---\r\n");
         cff.extend_from_slice(cfg.as_bytes());
         cff.extend_from_slice(b"--- file type: INF ---\r\n--- file type: HDR ---\r\n");
-        cff.extend_from_slice(format!("--- file type: DAT {format}: {} ---\r\n", dat.len()).as_bytes());
+        cff.extend_from_slice(
+            format!("--- file type: DAT {format}: {} ---\r\n", dat.len()).as_bytes(),
+        );
         cff.extend_from_slice(&dat);
-        let dir = tempfile::tempdir().unwrap();
-        let path = dir.path().join("hand.cff");
+        let path = dir.path().join(format!("hand_{format}.cff"));
         std::fs::write(&path, &cff).unwrap();
 
         let rec = read_comtrade(&path).unwrap_or_else(|e| panic!("{format}: {e}"));
@@ -391,10 +440,14 @@ fn hand_made_binary32_and_float32_cff_files_read() {
         for (got, want) in rec.times_s.iter().zip([0.0, 1.0 / 960.0, 2.0 / 960.0]) {
             assert!((got - want).abs() < 1e-15);
         }
-        if let Some(r) = reference_read(&path) {
+        paths.push(path);
+    }
+    if let Some(records) = reference_read(&paths) {
+        for r in records {
             let theirs = json_f64s(&r["analog"][0]);
-            assert_eq!(&theirs[..2], &[51.0, -99.0], "{format}: reference reader");
+            assert_eq!(&theirs[..2], &[51.0, -99.0], "reference reader");
             assert_eq!(r["status"][0], serde_json::json!([0, 1, 0]));
+            assert_eq!(r["status"][1], serde_json::json!([1, 1, 1]));
         }
     }
 }
@@ -415,13 +468,32 @@ fn truncated_data_is_reported_with_file_and_line() {
     // a whole line missing
     let short = EXAMPLE_DAT.lines().take(3).collect::<Vec<_>>().join("\r\n");
     let (err, text) = expect_error(EXAMPLE_CFG, short.as_bytes());
-    assert!(matches!(err, ComtradeError::Truncated { expected: 4, found: 3, .. }), "{text}");
-    assert!(text.contains("bad.dat") && text.contains("line 3"), "{text}");
+    assert!(
+        matches!(
+            err,
+            ComtradeError::Truncated {
+                expected: 4,
+                found: 3,
+                ..
+            }
+        ),
+        "{text}"
+    );
+    assert!(
+        text.contains("bad.dat") && text.contains("line 3"),
+        "{text}"
+    );
     // the last line cut in the middle
     let cut = &EXAMPLE_DAT[..EXAMPLE_DAT.len() - 8];
     let (err, text) = expect_error(EXAMPLE_CFG, cut.as_bytes());
-    assert!(matches!(err, ComtradeError::Truncated { found: 3, .. }), "{text}");
-    assert!(text.contains("bad.dat") && text.contains("line 4"), "{text}");
+    assert!(
+        matches!(err, ComtradeError::Truncated { found: 3, .. }),
+        "{text}"
+    );
+    assert!(
+        text.contains("bad.dat") && text.contains("line 4"),
+        "{text}"
+    );
 }
 
 #[test]
@@ -430,8 +502,21 @@ fn truncated_binary_data_is_reported_with_byte_counts() {
     // rows of 4 + 4 + 2·2 + 2 = 14 bytes; keep 3 rows and half of the fourth
     let dat = vec![0u8; 14 * 3 + 7];
     let (err, text) = expect_error(&cfg, &dat);
-    assert!(matches!(err, ComtradeError::Truncated { expected: 4, found: 3, .. }), "{text}");
-    assert!(text.contains("bad.dat") && text.contains("49 of 56 bytes"), "{text}");
+    assert!(
+        matches!(
+            err,
+            ComtradeError::Truncated {
+                expected: 4,
+                found: 3,
+                ..
+            }
+        ),
+        "{text}"
+    );
+    assert!(
+        text.contains("bad.dat") && text.contains("49 of 56 bytes"),
+        "{text}"
+    );
 }
 
 #[test]
@@ -440,18 +525,46 @@ fn channel_count_disagreeing_with_the_data_is_reported() {
     let dat = "1,0,100,-500,7,0\r\n2,1000,200,-250,7,0\r\n3,2000,300,0,7,1\r\n4,3000,1,250,7,1\r\n";
     let (err, text) = expect_error(EXAMPLE_CFG, dat.as_bytes());
     assert!(
-        matches!(err, ComtradeError::ChannelCountMismatch { line: 1, expected: 5, found: 6, .. }),
+        matches!(
+            err,
+            ComtradeError::ChannelCountMismatch {
+                line: 1,
+                expected: 5,
+                found: 6,
+                ..
+            }
+        ),
         "{text}"
     );
     assert!(text.contains("bad.dat, line 1"), "{text}");
     // binary: 2 analog declared, rows hold 3 → the byte count cannot match
     let cfg = EXAMPLE_CFG.replace("ASCII", "BINARY");
-    let (err, text) = expect_error(&cfg, &vec![0u8; 16 * 4]);
-    assert!(matches!(err, ComtradeError::DataLength { expected: 56, found: 64, .. }), "{text}");
+    let (err, text) = expect_error(&cfg, &[0u8; 16 * 4]);
+    assert!(
+        matches!(
+            err,
+            ComtradeError::DataLength {
+                expected: 56,
+                found: 64,
+                ..
+            }
+        ),
+        "{text}"
+    );
     // TT disagreeing with ##A + ##D in the .cfg itself
     let cfg = EXAMPLE_CFG.replace("3,2A,1D", "4,2A,1D");
     let (err, text) = expect_error(&cfg, EXAMPLE_DAT.as_bytes());
-    assert!(matches!(err, ComtradeError::ChannelTotal { line: 2, total: 4, .. }), "{text}");
+    assert!(
+        matches!(
+            err,
+            ComtradeError::ChannelTotal {
+                line: 2,
+                total: 4,
+                ..
+            }
+        ),
+        "{text}"
+    );
     assert!(text.contains("bad.cfg, line 2"), "{text}");
 }
 
@@ -459,46 +572,93 @@ fn channel_count_disagreeing_with_the_data_is_reported() {
 fn garbage_in_numeric_fields_names_file_line_and_field() {
     let cfg = EXAMPLE_CFG.replace("0.002,0,0", "0.0o2,0,0");
     let (err, text) = expect_error(&cfg, EXAMPLE_DAT.as_bytes());
-    assert!(matches!(err, ComtradeError::BadField { line: 4, .. }), "{text}");
-    assert!(text.contains("bad.cfg, line 4") && text.contains("`a`") && text.contains("0.0o2"), "{text}");
+    assert!(
+        matches!(err, ComtradeError::BadField { line: 4, .. }),
+        "{text}"
+    );
+    assert!(
+        text.contains("bad.cfg, line 4") && text.contains("`a`") && text.contains("0.0o2"),
+        "{text}"
+    );
 
     let dat = EXAMPLE_DAT.replace("3,2000,300,0,1", "3,2000,3x0,0,1");
     let (err, text) = expect_error(EXAMPLE_CFG, dat.as_bytes());
-    assert!(matches!(err, ComtradeError::BadField { line: 3, .. }), "{text}");
-    assert!(text.contains("bad.dat, line 3") && text.contains("A1 (VA)"), "{text}");
+    assert!(
+        matches!(err, ComtradeError::BadField { line: 3, .. }),
+        "{text}"
+    );
+    assert!(
+        text.contains("bad.dat, line 3") && text.contains("A1 (VA)"),
+        "{text}"
+    );
 
     let cfg = EXAMPLE_CFG.replace("\r\n50\r\n", "\r\nfifty\r\n");
     let (_, text) = expect_error(&cfg, EXAMPLE_DAT.as_bytes());
-    assert!(text.contains("bad.cfg, line 6") && text.contains("`lf`"), "{text}");
+    assert!(
+        text.contains("bad.cfg, line 6") && text.contains("`lf`"),
+        "{text}"
+    );
 
     let cfg = EXAMPLE_CFG.replace("17/03/2024,10:15:00.002", "17/13/2024,10:15:00.002");
     let (_, text) = expect_error(&cfg, EXAMPLE_DAT.as_bytes());
-    assert!(text.contains("bad.cfg, line 10") && text.contains("`date`"), "{text}");
+    assert!(
+        text.contains("bad.cfg, line 10") && text.contains("`date`"),
+        "{text}"
+    );
 
     let dat = EXAMPLE_DAT.replace("2,1000,200,-250,0", "2,1000,200,-250,2");
     let (_, text) = expect_error(EXAMPLE_CFG, dat.as_bytes());
-    assert!(text.contains("bad.dat, line 2") && text.contains("D1 (TRIP)"), "{text}");
+    assert!(
+        text.contains("bad.dat, line 2") && text.contains("D1 (TRIP)"),
+        "{text}"
+    );
 }
 
 #[test]
 fn unknown_format_and_short_cfg_are_reported() {
     let cfg = EXAMPLE_CFG.replace("ASCII", "BINARY16");
     let (err, text) = expect_error(&cfg, EXAMPLE_DAT.as_bytes());
-    assert!(matches!(err, ComtradeError::UnknownFormat { line: 11, .. }), "{text}");
+    assert!(
+        matches!(err, ComtradeError::UnknownFormat { line: 11, .. }),
+        "{text}"
+    );
     assert!(text.contains("BINARY16"), "{text}");
 
     let cfg = EXAMPLE_CFG.replace("ASCII", "FLOAT32");
     let (err, text) = expect_error(&cfg, EXAMPLE_DAT.as_bytes());
-    assert!(matches!(err, ComtradeError::FormatNeedsRevision2013 { line: 11, .. }), "{text}");
+    assert!(
+        matches!(err, ComtradeError::FormatNeedsRevision2013 { line: 11, .. }),
+        "{text}"
+    );
 
-    let cfg: String = EXAMPLE_CFG.lines().take(7).map(|l| format!("{l}\n")).collect();
+    let cfg: String = EXAMPLE_CFG
+        .lines()
+        .take(7)
+        .map(|l| format!("{l}\n"))
+        .collect();
     let (err, text) = expect_error(&cfg, EXAMPLE_DAT.as_bytes());
-    assert!(matches!(err, ComtradeError::MissingLine { last_line: 7, .. }), "{text}");
+    assert!(
+        matches!(err, ComtradeError::MissingLine { last_line: 7, .. }),
+        "{text}"
+    );
     assert!(text.contains("samp,endsamp"), "{text}");
 
-    let cfg = EXAMPLE_CFG.replace("1,VA,A,BUS1,V,0.01,0.5,0,-99999,99998,1,1,P", "1,VA,A,BUS1,V,0.01");
+    let cfg = EXAMPLE_CFG.replace(
+        "1,VA,A,BUS1,V,0.01,0.5,0,-99999,99998,1,1,P",
+        "1,VA,A,BUS1,V,0.01",
+    );
     let (err, text) = expect_error(&cfg, EXAMPLE_DAT.as_bytes());
-    assert!(matches!(err, ComtradeError::FieldCount { line: 3, found: 6, .. }), "{text}");
+    assert!(
+        matches!(
+            err,
+            ComtradeError::FieldCount {
+                line: 3,
+                found: 6,
+                ..
+            }
+        ),
+        "{text}"
+    );
 }
 
 #[test]
@@ -516,7 +676,10 @@ fn writer_rejects_records_it_cannot_represent() {
     let rec = sample_recording((0..10).map(|i| i as f64 * 1e-3).collect());
     let err = write_comtrade(&rec, &dir.path().join("x.cff"), &config).unwrap_err();
     assert!(err.to_string().contains("2013"), "{err}");
-    assert!(std::fs::read_dir(dir.path()).unwrap().next().is_none(), "nothing written");
+    assert!(
+        std::fs::read_dir(dir.path()).unwrap().next().is_none(),
+        "nothing written"
+    );
 }
 
 // ------------------------------------------------------------------------------------------
@@ -611,8 +774,7 @@ fn non_integer_rate_is_named_and_resampling_recovers_the_phasor() {
         .to_string()
         .contains("10000"));
     let times: Vec<f64> = (0..600).map(|i| i as f64 / fs).collect();
-    let pure = SequenceComponents { ..expected };
-    let phases = pure.to_phases();
+    let phases = expected.to_phases();
     let waves: Vec<Vec<f64>> = phases
         .iter()
         .map(|p| {
@@ -634,9 +796,15 @@ fn non_integer_rate_is_named_and_resampling_recovers_the_phasor() {
     // DFT's weights sum to √2 in magnitude and the Fortescue rows average three phases
     let h = 1.0 / fs;
     let omega = 2.0 * PI * f0;
-    let peak = phases.iter().map(|p| 2f64.sqrt() * p.norm()).fold(0.0, f64::max);
+    let peak = phases
+        .iter()
+        .map(|p| 2f64.sqrt() * p.norm())
+        .fold(0.0, f64::max);
     let bound = 2f64.sqrt() * h * h / 8.0 * omega * omega * peak;
     for s in &seq {
-        assert!((s.positive - expected.positive).norm() <= bound, "bound {bound:e}");
+        assert!(
+            (s.positive - expected.positive).norm() <= bound,
+            "bound {bound:e}"
+        );
     }
 }
