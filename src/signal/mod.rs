@@ -1,2 +1,4 @@
 //! Signals: traces of fault responses, their files, and recordings.
+pub mod comtrade;
+pub mod phasor;
 pub mod trace;

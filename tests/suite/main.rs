@@ -2,4 +2,5 @@
 //! External checks name their published source beside the numbers.
 
 mod common;
+mod comtrade;
 mod full_converter;
