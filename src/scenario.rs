@@ -332,6 +332,15 @@ impl ScenarioDesign {
         let mut cases = Vec::with_capacity(self.cases);
         for (k, mut u) in points.into_iter().enumerate() {
             let mut case = self.case_at(k + 1, &u);
+            // a disturbance outside its physical range is the design's fault, not bad luck
+            case.disturbance.validate().map_err(|e| match e {
+                understudy_runtime::unit::UnitError::BadValue {
+                    field,
+                    value,
+                    expected,
+                } => Error::bad_input(format!("design.{field}"), value.to_string(), expected),
+                other => Error::Unit(other),
+            })?;
             let mut tries = 0;
             while !feasible(&case) {
                 tries += 1;

@@ -84,7 +84,7 @@ impl Study {
         let study: Study = toml::from_str(text).map_err(|e| {
             let line = e
                 .span()
-                .map(|s| text[..s.start.min(text.len())].lines().count().max(1));
+                .map(|s| text[..s.start.min(text.len())].matches('\n').count() + 1);
             Error::BadFile {
                 path: origin.to_path_buf(),
                 message: match line {

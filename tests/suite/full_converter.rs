@@ -21,7 +21,11 @@ fn run(
     t_end: f64,
     dt: f64,
     method: &Method,
-) -> Vec<(f64, Vec<f64>, understudy::runtime::unit::full_converter::Signals)> {
+) -> Vec<(
+    f64,
+    Vec<f64>,
+    understudy::runtime::unit::full_converter::Signals,
+)> {
     let mut out = Vec::new();
     let bp = unit.breakpoints_s();
     integrate(unit, x, 0.0, t_end, dt, &bp, method, |t, x, m| {
@@ -36,13 +40,45 @@ fn initialisation_is_a_true_steady_state() {
     // Requirement: every derivative <= 1e-9 at t = 0 and terminal P, Q equal the setpoints to
     // 1e-6 pu, over strong and weak grids, both power-factor signs, with U given or solved.
     let cases = [
-        (OperatingPoint::new(1.0, 0.0), GridEquivalent { scr: 10.0, x_over_r: 10.0 }),
-        (OperatingPoint::new(0.8, 0.3), GridEquivalent { scr: 3.0, x_over_r: 6.0 }),
-        (OperatingPoint::new(0.5, -0.1), GridEquivalent { scr: 6.0, x_over_r: 15.0 }),
-        (OperatingPoint::new(0.5, 0.0), GridEquivalent { scr: 2.0, x_over_r: 15.0 }),
         (
-            OperatingPoint { p: 0.9, q: 0.1, u: Some(1.03), grid_voltage: 1.0 },
-            GridEquivalent { scr: 5.0, x_over_r: 8.0 },
+            OperatingPoint::new(1.0, 0.0),
+            GridEquivalent {
+                scr: 10.0,
+                x_over_r: 10.0,
+            },
+        ),
+        (
+            OperatingPoint::new(0.8, 0.3),
+            GridEquivalent {
+                scr: 3.0,
+                x_over_r: 6.0,
+            },
+        ),
+        (
+            OperatingPoint::new(0.5, -0.1),
+            GridEquivalent {
+                scr: 6.0,
+                x_over_r: 15.0,
+            },
+        ),
+        (
+            OperatingPoint::new(0.5, 0.0),
+            GridEquivalent {
+                scr: 2.0,
+                x_over_r: 15.0,
+            },
+        ),
+        (
+            OperatingPoint {
+                p: 0.9,
+                q: 0.1,
+                u: Some(1.03),
+                grid_voltage: 1.0,
+            },
+            GridEquivalent {
+                scr: 5.0,
+                x_over_r: 8.0,
+            },
         ),
         (OperatingPoint::new(0.3, 0.0), IDEAL),
     ];
@@ -71,7 +107,10 @@ fn initialisation_is_a_true_steady_state() {
         }
         let mut g = vec![0.0; unit.guard_count()];
         unit.guards(0.0, &x, &mut g);
-        assert!(g.iter().all(|v| *v < 0.0), "a guard is active at t = 0: {g:?}");
+        assert!(
+            g.iter().all(|v| *v < 0.0),
+            "a guard is active at t = 0: {g:?}"
+        );
     }
 }
 
@@ -80,14 +119,22 @@ fn steady_state_holds_without_disturbance() {
     let (mut unit, mut x) = FullConverter::initialise(
         FullConverterParams::default(),
         &OperatingPoint::new(0.7, 0.1),
-        &GridEquivalent { scr: 4.0, x_over_r: 8.0 },
+        &GridEquivalent {
+            scr: 4.0,
+            x_over_r: 8.0,
+        },
         &Disturbance::None,
     )
     .unwrap();
     let x0 = x.clone();
     run(&mut unit, &mut x, 1.0, 1e-2, &rk4(5e-5));
     for k in 0..x.len() {
-        assert!((x[k] - x0[k]).abs() < 1e-9, "{} drifted by {:e}", ix::NAMES[k], x[k] - x0[k]);
+        assert!(
+            (x[k] - x0[k]).abs() < 1e-9,
+            "{} drifted by {:e}",
+            ix::NAMES[k],
+            x[k] - x0[k]
+        );
     }
 }
 
@@ -125,7 +172,11 @@ fn current_loop_is_first_order_with_bandwidth_alpha() {
         let t_cross = t1 + (level - s1.i_dq.re) / (s2.i_dq.re - s1.i_dq.re) * (t2 - t1);
         let tau = t_cross - t_step;
         let rel = (tau * alpha - 1.0).abs();
-        assert!(rel < 0.02, "bandwidth {bandwidth_hz} Hz: τ·α = {} (2 % allowed)", tau * alpha);
+        assert!(
+            rel < 0.02,
+            "bandwidth {bandwidth_hz} Hz: τ·α = {} (2 % allowed)",
+            tau * alpha
+        );
         // and the q-axis is not disturbed (decoupling)
         let worst_q = rows
             .iter()
@@ -179,7 +230,10 @@ fn pll_matches_its_linearised_second_order_loop() {
                 crossings.push(ta + ea / (ea - eb) * (tb - ta));
             }
         }
-        assert!(crossings.len() >= 2, "need two zero crossings, got {crossings:?}");
+        assert!(
+            crossings.len() >= 2,
+            "need two zero crossings, got {crossings:?}"
+        );
         let wd = PI / (crossings[1] - crossings[0]);
         let sigma = wd / (wd * crossings[0]).tan();
         let wn_sim = (sigma * sigma + wd * wd).sqrt();
@@ -251,7 +305,10 @@ fn active_power_recovers_at_the_rate_limit() {
     let (mut unit, mut x) = FullConverter::initialise(
         params,
         &OperatingPoint::new(1.0, 0.0),
-        &GridEquivalent { scr: 5.0, x_over_r: 10.0 },
+        &GridEquivalent {
+            scr: 5.0,
+            x_over_r: 10.0,
+        },
         &Disturbance::Fault {
             start_s: 0.05,
             duration_s: 0.15,
@@ -268,8 +325,14 @@ fn active_power_recovers_at_the_rate_limit() {
             worst = worst.max((sb.active_current_ref - sa.active_current_ref) / (tb - ta));
         }
     }
-    assert!(worst <= rate * (1.0 + 1e-6), "active current rose at {worst} pu/s");
-    assert!(worst >= 0.5 * rate, "the ramp was not exercised: {worst} pu/s");
+    assert!(
+        worst <= rate * (1.0 + 1e-6),
+        "active current rose at {worst} pu/s"
+    );
+    assert!(
+        worst >= 0.5 * rate,
+        "the ramp was not exercised: {worst} pu/s"
+    );
 }
 
 /// The unit plus four accumulators: ∫p_source, ∫p_terminal, ∫R·|i|², ∫p_chopper.
@@ -316,7 +379,10 @@ fn dc_link_energy_balance_holds_through_a_fault() {
     let (unit, x0) = FullConverter::initialise(
         FullConverterParams::default(),
         &OperatingPoint::new(0.9, 0.1),
-        &GridEquivalent { scr: 4.0, x_over_r: 10.0 },
+        &GridEquivalent {
+            scr: 4.0,
+            x_over_r: 10.0,
+        },
         &Disturbance::Fault {
             start_s: 0.1,
             duration_s: 0.2,
@@ -341,7 +407,10 @@ fn dc_link_energy_balance_holds_through_a_fault() {
         |_, _, m| chopper_seen |= m.0.modes.chopper_on,
     )
     .unwrap();
-    assert!(chopper_seen && stats.guard_events > 0, "the fault must exercise the chopper");
+    assert!(
+        chopper_seen && stats.guard_events > 0,
+        "the fault must exercise the chopper"
+    );
     let p = &audit.0.params;
     let stored = |x: &[f64]| {
         p.dc_energy_s * x[ix::DC_W]
@@ -374,7 +443,10 @@ fn bad_settings_and_infeasible_points_name_the_field() {
     let err = FullConverter::initialise(
         FullConverterParams::default(),
         &OperatingPoint::new(0.5, 0.0),
-        &GridEquivalent { scr: 3.0, x_over_r: 10.0 },
+        &GridEquivalent {
+            scr: 3.0,
+            x_over_r: 10.0,
+        },
         &Disturbance::VoltageDip {
             start_s: 0.1,
             duration_s: 0.1,
@@ -383,13 +455,19 @@ fn bad_settings_and_infeasible_points_name_the_field() {
         },
     )
     .unwrap_err();
-    assert!(err.to_string().contains("disturbance.residual_voltage"), "{err}");
+    assert!(
+        err.to_string().contains("disturbance.residual_voltage"),
+        "{err}"
+    );
 
     // P = 1 pu through SCR 1.2 with X/R 10 lies beyond the nose of the P–V curve
     let err = FullConverter::initialise(
         FullConverterParams::default(),
         &OperatingPoint::new(1.0, 0.0),
-        &GridEquivalent { scr: 0.9, x_over_r: 10.0 },
+        &GridEquivalent {
+            scr: 0.9,
+            x_over_r: 10.0,
+        },
         &Disturbance::None,
     )
     .unwrap_err();

@@ -4,3 +4,4 @@
 mod common;
 mod comtrade;
 mod full_converter;
+mod simulate_cli;
