@@ -307,8 +307,7 @@ impl LevenbergMarquardt {
             });
         }
         for (i, (&(lower, upper), &x)) in bounds.iter().zip(start_log_params).enumerate() {
-            // NaN fails `lower <= upper`
-            if !(lower <= upper) {
+            if lower.is_nan() || upper.is_nan() || lower > upper {
                 return Err(FitError::InvalidBounds {
                     parameter: names[i].clone(),
                     lower,
@@ -325,7 +324,8 @@ impl LevenbergMarquardt {
                 });
             }
         }
-        let residuals = evaluate_residuals(model, start_log_params).map_err(|e| model_error(0, e))?;
+        let residuals =
+            evaluate_residuals(model, start_log_params).map_err(|e| model_error(0, e))?;
         let (jacobian, jacobian_source) =
             evaluate_jacobian(model, start_log_params).map_err(|e| model_error(0, e))?;
         let gradient = jacobian.tr_mul(&residuals);
@@ -372,7 +372,7 @@ impl LevenbergMarquardt {
                 cost: state.cost,
             });
         }
-        if !(state.damping < 1e300) {
+        if state.damping.is_nan() || state.damping >= 1e300 {
             return Err(FitError::Stalled {
                 iteration: state.iteration,
                 cost: state.cost,
@@ -397,7 +397,13 @@ impl LevenbergMarquardt {
             normal[(a, a)] += lambda * state.scaling[i];
         }
         let Some(chol) = normal.cholesky() else {
-            self.reject(state, StepOutcome::RejectedSingular, f64::NAN, f64::NAN, vec![]);
+            self.reject(
+                state,
+                StepOutcome::RejectedSingular,
+                f64::NAN,
+                f64::NAN,
+                vec![],
+            );
             return Ok(());
         };
         let delta_free = chol.solve(&rhs);
@@ -443,7 +449,8 @@ impl LevenbergMarquardt {
         };
         let trial_cost = 0.5 * trial_residuals.norm_squared();
         // predicted reduction of the local quadratic model: −gᵀδ − ½‖Jδ‖²
-        let predicted = -state.gradient.dot(&delta) - 0.5 * (&state.jacobian * &delta).norm_squared();
+        let predicted =
+            -state.gradient.dot(&delta) - 0.5 * (&state.jacobian * &delta).norm_squared();
         let actual = state.cost - trial_cost;
         let gain_ratio = actual / predicted;
         if !(actual > 0.0 && predicted > 0.0) {

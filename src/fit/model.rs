@@ -10,7 +10,10 @@ use thiserror::Error;
 pub enum ModelError {
     /// The model itself failed (a simulation diverged, a parameter combination is invalid...).
     #[error("model evaluation failed at log-parameters {log_params:?}: {reason}")]
-    Evaluation { log_params: Vec<f64>, reason: String },
+    Evaluation {
+        log_params: Vec<f64>,
+        reason: String,
+    },
     /// A residual, Jacobian entry or second derivative came out NaN or infinite.
     #[error("non-finite {what} (entry {index} = {value}) at log-parameters {log_params:?}")]
     NonFinite {

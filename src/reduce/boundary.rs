@@ -291,8 +291,18 @@ mod tests {
 
     #[test]
     fn closing_gap_is_a_fold() {
-        let g = path(vec![0.0, 0.7, 0.0], vec![0.33, 0.335, 0.0], vec![400.0, -400.0, 0.5]);
+        let g = path(
+            vec![0.0, 0.7, 0.0],
+            vec![0.33, 0.335, 0.0],
+            vec![400.0, -400.0, 0.5],
+        );
         let r = read_boundary(&names(), &g, &BoundaryConfig::default()).unwrap();
-        assert_eq!(r.limit, BoundaryLimit::Fold { first: 0, second: 1 });
+        assert_eq!(
+            r.limit,
+            BoundaryLimit::Fold {
+                first: 0,
+                second: 1
+            }
+        );
     }
 }

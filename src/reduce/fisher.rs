@@ -105,7 +105,9 @@ mod tests {
     fn eigenvalues_ascending_and_vectors_reconstruct_matrix() {
         let jac = DMatrix::from_row_slice(3, 3, &[1.0, 2.0, 0.5, -1.0, 0.3, 4.0, 2.0, 2.0, 2.0]);
         let fim = FisherInformation::from_jacobian(&[0.0; 3], &jac, DerivativeSource::Exact);
-        assert!(fim.eigenvalues[0] <= fim.eigenvalues[1] && fim.eigenvalues[1] <= fim.eigenvalues[2]);
+        assert!(
+            fim.eigenvalues[0] <= fim.eigenvalues[1] && fim.eigenvalues[1] <= fim.eigenvalues[2]
+        );
         let vectors = DMatrix::from_fn(3, 3, |i, k| fim.eigenvectors[k][i]);
         let rebuilt = &vectors
             * DMatrix::from_diagonal(&DVector::from_column_slice(&fim.eigenvalues))

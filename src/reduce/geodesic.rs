@@ -88,7 +88,7 @@ impl GeodesicConfig {
 
     /// Stop when |v| exceeds this multiple of its start value (> 1).
     pub fn with_max_velocity_growth(mut self, factor: f64) -> Result<Self, ConfigError> {
-        if !(factor > 1.0) {
+        if factor.is_nan() || factor <= 1.0 {
             return Err(ConfigError::Invalid {
                 setting: "max_velocity_growth",
                 value: factor.to_string(),
@@ -255,7 +255,11 @@ pub fn geodesic_acceleration<M: LeastSquaresModel + ?Sized>(
     let v_t = svd.v_t.as_ref().expect("SVD computed with Vᵀ");
     let mut coefficients = u.tr_mul(&avv);
     for (c, s) in coefficients.iter_mut().zip(svd.singular_values.iter()) {
-        *c = if *s > cutoff && *s > 0.0 { -*c / s } else { 0.0 };
+        *c = if *s > cutoff && *s > 0.0 {
+            -*c / s
+        } else {
+            0.0
+        };
     }
     let acceleration = v_t.tr_mul(&coefficients);
     let source = if j_source == DerivativeSource::Exact && a_source == DerivativeSource::Exact {
@@ -430,11 +434,11 @@ impl Geodesic {
         let mut k: Vec<DVector<f64>> = Vec::with_capacity(7);
         k.push(state.derivative.clone());
         let mut last_jacobian = None;
-        for stage in 1..7 {
+        for (stage, row) in A.iter().enumerate().skip(1) {
             let mut y_stage = y.clone();
-            for (j, kj) in k.iter().enumerate().take(stage) {
-                if A[stage][j] != 0.0 {
-                    y_stage.axpy(h * A[stage][j], kj, 1.0);
+            for (kj, &a) in k.iter().zip(row).take(stage) {
+                if a != 0.0 {
+                    y_stage.axpy(h * a, kj, 1.0);
                 }
             }
             match self.derivative(model, &y_stage) {
@@ -491,11 +495,7 @@ impl Geodesic {
             return Ok(());
         }
         // step-size controller, Hairer, Nørsett & Wanner eq. (4.13) with fac = 0.9
-        let factor = if err > 0.0 {
-            0.9 * err.powf(-0.2)
-        } else {
-            5.0
-        };
+        let factor = if err > 0.0 { 0.9 * err.powf(-0.2) } else { 5.0 };
         if err > 1.0 {
             state.rejected_steps += 1;
             state.step_size = h * factor.clamp(0.2, 1.0);

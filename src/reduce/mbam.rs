@@ -4,9 +4,7 @@ use super::boundary::{read_boundary, BoundaryConfig, BoundaryReading};
 use super::fisher::FisherInformation;
 use super::geodesic::{Geodesic, GeodesicConfig, GeodesicResult};
 use super::ReduceError;
-use crate::fit::{
-    evaluate_residuals, fit, FitResult, LeastSquaresModel, LmConfig, ModelError,
-};
+use crate::fit::{evaluate_residuals, fit, FitResult, LeastSquaresModel, LmConfig, ModelError};
 
 /// A reduced model handed back by a [`Reducer`], with where its refit starts.
 pub struct ReducedModel {
@@ -110,7 +108,9 @@ pub fn mbam_step<M: LeastSquaresModel + ?Sized>(
     );
     let geodesics = [forward?, backward?];
 
-    let mut candidates: Vec<usize> = (0..2).filter(|&k| geodesics[k].stop.is_boundary()).collect();
+    let mut candidates: Vec<usize> = (0..2)
+        .filter(|&k| geodesics[k].stop.is_boundary())
+        .collect();
     if candidates.is_empty() {
         return Err(ReduceError::NoBoundary {
             arc_lengths: geodesics.iter().map(|g| g.arc_length).collect(),
@@ -131,8 +131,12 @@ pub fn mbam_step<M: LeastSquaresModel + ?Sized>(
                 continue;
             }
         };
-        let refit = fit(reduced.model.as_ref(), &reduced.start_log_params, &config.refit)
-            .map_err(ReduceError::Refit)?;
+        let refit = fit(
+            reduced.model.as_ref(),
+            &reduced.start_log_params,
+            &config.refit,
+        )
+        .map_err(ReduceError::Refit)?;
         let record = MbamRecord {
             fisher,
             geodesics,

@@ -18,8 +18,8 @@ mod mbam;
 pub use boundary::{read_boundary, BoundaryConfig, BoundaryLimit, BoundaryReading, LimitDirection};
 pub use fisher::FisherInformation;
 pub use geodesic::{
-    geodesic_acceleration, Geodesic, GeodesicConfig, GeodesicPoint, GeodesicResult,
-    GeodesicState, GeodesicStop,
+    geodesic_acceleration, Geodesic, GeodesicConfig, GeodesicPoint, GeodesicResult, GeodesicState,
+    GeodesicStop,
 };
 pub use mbam::{mbam_step, MbamConfig, MbamRecord, ReducedModel, Reducer};
 

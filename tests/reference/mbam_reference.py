@@ -3,7 +3,8 @@
 Input (JSON on stdin):
   two_exp:     {"times": [...], "rates": [k1, k2]}
   geodesics:   [{"start": [θ1, θ2], "velocity": [v1, v2], "tau": τ}, ...]   (two-exponential model)
-  oscillation: {"times": [...], "data": [...], "start": [θ...], "bounds": [[lo, hi], ...]}
+  oscillation: {"times": [...], "data": [...], "start": [θ...], "bounded_start": [θ...],
+                "bounds": [[lo, hi], ...]}
 
 Output (JSON on stdout):
   fisher_eigenvalues   eigenvalues of JᵀJ in log-rates at the given rates (numpy.linalg.eigvalsh)
@@ -87,7 +88,7 @@ def main():
     lo = [b[0] for b in osc["bounds"]]
     hi = [b[1] for b in osc["bounds"]]
     fit = least_squares(
-        lambda th: oscillation(t, th) - data, osc["start"], method="trf", bounds=(lo, hi), **TIGHT
+        lambda th: oscillation(t, th) - data, osc["bounded_start"], method="trf", bounds=(lo, hi), **TIGHT
     )
     out["oscillation_bounded"] = {"cost": float(fit.cost), "log_params": fit.x.tolist()}
 
