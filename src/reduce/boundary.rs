@@ -76,6 +76,9 @@ impl BoundaryLimit {
                 )
             }
             BoundaryLimit::Coupled { components } => {
+                // parameter order reads more naturally than velocity order
+                let mut components = components.clone();
+                components.sort_by_key(|c| c.0);
                 let moving: Vec<String> = components
                     .iter()
                     .map(|&(i, u)| format!("{} → {}", names[i], LimitDirection::of(u).symbol()))

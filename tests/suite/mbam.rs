@@ -697,3 +697,75 @@ fn max_iterations_gives_no_convergence_with_cost() {
             | TerminationReason::GradientTolerance
     ));
 }
+
+/// y(t) = (a/b)(1 − e^{−b t}), t = {0.5, 1, 2, 4}: a saturating rise, derivatives by finite
+/// differences (the default path).
+struct SaturatingRise {
+    data: Vec<f64>,
+}
+
+const RISE_TIMES: [f64; 4] = [0.5, 1.0, 2.0, 4.0];
+
+impl LeastSquaresModel for SaturatingRise {
+    fn parameter_names(&self) -> Vec<String> {
+        vec!["a".into(), "b".into()]
+    }
+    fn residual_count(&self) -> usize {
+        RISE_TIMES.len()
+    }
+    fn residuals(&self, th: &[f64], out: &mut [f64]) -> Result<(), ModelError> {
+        let (a, b) = (th[0].exp(), th[1].exp());
+        for (k, t) in RISE_TIMES.iter().enumerate() {
+            out[k] = a / b * -(-b * t).exp_m1() - self.data[k];
+        }
+        Ok(())
+    }
+}
+
+#[test]
+fn saturating_rise_limits_are_a_rate_to_zero_and_a_coupled_divergence() {
+    // Expected from the model's analytic limits (common practice): b → 0 gives the ramp y = a t;
+    // a, b → ∞ with a/b finite gives the step y = a/b. Checked beforehand with
+    // scipy.integrate.solve_ivp on the same geodesic equation (end directions ≈ (−0.005, −1.0)
+    // and ≈ (0.707, 0.707)).
+    let start = [0.0, 0.0];
+    let model = SaturatingRise {
+        data: RISE_TIMES.iter().map(|t| -(-t).exp_m1()).collect(),
+    };
+    let fim = FisherInformation::at(&model, &start).unwrap();
+    assert_eq!(fim.jacobian_source, DerivativeSource::FiniteDifferences);
+    let (_, e_min) = fim.least_sensitive();
+    let mut limits = Vec::new();
+    for sign in [1.0, -1.0] {
+        let direction: Vec<f64> = e_min.iter().map(|x| sign * x).collect();
+        let g = Geodesic::default()
+            .run(&model, &start, &direction, |_| {})
+            .unwrap();
+        assert!(g.stop.is_boundary(), "{:?}", g.stop);
+        let reading =
+            read_boundary(&model.parameter_names(), &g, &BoundaryConfig::default()).unwrap();
+        eprintln!(
+            "τ = {:.4}, {:?}: {}",
+            g.arc_length, g.stop, reading.sentence
+        );
+        limits.push((reading.limit, reading.sentence));
+    }
+    let b_to_zero = BoundaryLimit::Single {
+        index: 1,
+        direction: LimitDirection::ToZero,
+    };
+    let (single, coupled) = if limits[0].0 == b_to_zero {
+        (&limits[0], &limits[1])
+    } else {
+        (&limits[1], &limits[0])
+    };
+    assert_eq!(single.0, b_to_zero);
+    match &coupled.0 {
+        BoundaryLimit::Coupled { components } => {
+            assert_eq!(components.len(), 2);
+            assert!(components.iter().all(|&(_, u)| u > 0.0), "{components:?}");
+        }
+        other => panic!("expected a coupled limit, got {other:?}"),
+    }
+    assert!(coupled.1.contains("a·b^(-1.00"), "{}", coupled.1);
+}
