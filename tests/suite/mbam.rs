@@ -507,6 +507,33 @@ fn levenberg_marquardt_matches_scipy_on_damped_oscillation() {
 }
 
 #[test]
+fn geodesic_acceleration_reaches_the_same_minimum() {
+    let model = Oscillation::new();
+    let config = tight_lm().with_geodesic_acceleration(Some(0.75)).unwrap();
+    let result = fit(&model, &osc_start(), &config).unwrap();
+    let plain = fit(&model, &osc_start(), &tight_lm()).unwrap();
+    eprintln!(
+        "LM with geodesic acceleration: cost {:e} after {} iterations ({} residual evaluations); \
+         without: {} iterations ({} residual evaluations)",
+        result.cost,
+        result.iterations,
+        result.residual_evaluations,
+        plain.iterations,
+        plain.residual_evaluations
+    );
+    assert!(rel(result.cost, plain.cost) < 1e-10);
+    if let Some(r) = reference() {
+        // scipy.optimize.least_squares(method="lm"), same start and data
+        let cost = r["oscillation_lm"]["cost"].as_f64().unwrap();
+        assert!(
+            rel(result.cost, cost) < 1e-6,
+            "{} vs scipy {cost}",
+            result.cost
+        );
+    }
+}
+
+#[test]
 fn bounded_fit_matches_scipy_trf_with_bounds() {
     let mut model = Oscillation::new();
     model.bounds = Some(oscillation_bounds());
