@@ -19,7 +19,7 @@ pub use boundary::{read_boundary, BoundaryConfig, BoundaryLimit, BoundaryReading
 pub use fisher::FisherInformation;
 pub use geodesic::{
     geodesic_acceleration, Geodesic, GeodesicConfig, GeodesicPoint, GeodesicResult, GeodesicState,
-    GeodesicStop,
+    GeodesicStop, SpeedNormalisation,
 };
 pub use mbam::{mbam_step, MbamConfig, MbamRecord, ReducedModel, Reducer};
 

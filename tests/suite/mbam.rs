@@ -14,6 +14,7 @@ use understudy::fit::{
 use understudy::reduce::{
     mbam_step, read_boundary, BoundaryConfig, BoundaryLimit, BoundaryReading, FisherInformation,
     Geodesic, GeodesicConfig, GeodesicResult, LimitDirection, MbamConfig, ReducedModel,
+    SpeedNormalisation,
 };
 
 use crate::common;
@@ -589,6 +590,26 @@ fn linear_model_has_no_curvature_and_straight_geodesics() {
         .run(&Linear, &start, &v, |_| {})
         .unwrap();
     assert!(!g.stop.is_boundary());
+    // default: |J v| = 1 at the start, and (flat manifold) all along
+    let speed_drift = g
+        .path
+        .iter()
+        .map(|p| (p.data_speed - 1.0).abs())
+        .fold(0.0, f64::max);
+    eprintln!(
+        "linear model: max ||Jv| - 1| = {speed_drift:e} over {} points",
+        g.path.len()
+    );
+    assert!(speed_drift < 1e-6);
+    let in_parameters = Geodesic::new(
+        GeodesicConfig::default()
+            .with_speed_normalisation(SpeedNormalisation::ParameterSpace)
+            .with_max_arc_length(1.0)
+            .unwrap(),
+    )
+    .run(&Linear, &start, &v, |_| {})
+    .unwrap();
+    assert!((in_parameters.start().speed - 1.0).abs() < 1e-12);
     let v0 = &g.start().velocity;
     for p in &g.path {
         for i in 0..3 {
