@@ -9,6 +9,8 @@
 pub mod atomic;
 pub mod demo;
 pub mod error;
+pub mod fit;
+pub mod reduce;
 pub mod scenario;
 pub mod signal;
 pub mod simulate;

@@ -4,4 +4,5 @@
 mod common;
 mod comtrade;
 mod full_converter;
+mod mbam;
 mod simulate_cli;
