@@ -280,9 +280,10 @@ pub fn resample_linear(
                 - 1;
             let (t0, t1) = (times_s[k], times_s[k + 1]);
             let weight = (t - t0) / (t1 - t0);
-            Ok(if weight == 0.0 {
+            // on a sample exactly: return it (a missing neighbour must not leak in)
+            Ok(if weight <= 0.0 {
                 values[k]
-            } else if weight == 1.0 {
+            } else if weight >= 1.0 {
                 values[k + 1]
             } else {
                 values[k] + weight * (values[k + 1] - values[k])
