@@ -81,6 +81,11 @@ pub struct Stats {
     pub jacobian_evaluations: usize,
     pub guard_events: usize,
     pub breakpoints: usize,
+    /// LU factorisations of the Newton iteration matrix (TR-BDF2).
+    pub lu_decompositions: usize,
+    /// Step attempts rejected because Newton did not converge (TR-BDF2); included in
+    /// `rejected_steps`.
+    pub newton_failures: usize,
 }
 
 /// Failures of the numbers during integration.
@@ -527,13 +532,12 @@ impl Locator {
             if iteration > BISECT_AFTER {
                 c = 0.5 * (a + b);
             } else {
-                for j in 0..g_b.len() {
-                    if armed(j) && g_b[j] >= 0.0 {
-                        let ga = w_a * self.g_a[j];
-                        let gb = w_b * g_b[j];
+                for (j, (&g_a, &g_b)) in self.g_a.iter().zip(g_b.iter()).enumerate() {
+                    if armed(j) && g_b >= 0.0 {
+                        let ga = w_a * g_a;
+                        let gb = w_b * g_b;
                         // ga < 0 ≤ gb, so the secant root lies in [a, b]
-                        let cj = b - (b - a) * gb / (gb - ga);
-                        c = c.min(cj);
+                        c = c.min(b - (b - a) * gb / (gb - ga));
                     }
                 }
             }
