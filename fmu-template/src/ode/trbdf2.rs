@@ -331,6 +331,11 @@ impl<S: HybridSystem> Stepper<S> for TrBdf2 {
             if h < self.h_wanted {
                 h_next = h_next.max(self.h_wanted);
             }
+            // Keep h (and so the LU of I − d·h·J) when it would grow by less than 20 %
+            // (RADAU5's quot1/quot2 rule, Hairer & Wanner II, §IV.8).
+            if (1.0..=1.2).contains(&(h_next / h)) {
+                h_next = h;
+            }
             self.h_after = h_next;
             self.last_rejected = false;
             Ok(true)
