@@ -5,4 +5,5 @@ mod common;
 mod comtrade;
 mod full_converter;
 mod mbam;
+mod ode;
 mod simulate_cli;

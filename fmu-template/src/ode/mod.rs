@@ -14,6 +14,29 @@
 //!
 //! Samples are right-continuous: a sample that falls on a breakpoint or event time is taken after
 //! the transition has been applied.
+//!
+//! # Steps
+//! Every step is cut to land exactly on the next sample, breakpoint or `t_end` (those times are
+//! used bit-exactly as step ends). RK4 spreads equal steps no longer than `step_s` between two
+//! such targets; the adaptive methods take their controlled step, land on a target within
+//! reach, and halve the rest when a full step would leave a sliver.
+//!
+//! # Events
+//! Guards are evaluated in the current mode at the start and end of each accepted step. A guard
+//! is *armed* when it is < 0 at the step start and *fires* when it is ≥ 0 at the step end. The
+//! earliest crossing is bracketed by the Illinois variant of regula falsi, each trial point being
+//! a real step of the method from the step start (no interpolant), until the bracket is narrower
+//! than [`EVENT_TIME_TOL_REL`]`·max(1 s, |t0|, |t_end|)`; the step then ends at the bracket's right
+//! end (where the guard is already ≥ 0), so the transition happens at most that much after the
+//! true crossing of the numerical solution. Every armed guard that is ≥ 0 there fires, earliest
+//! estimated crossing first; after the first transition the others fire only if they are still
+//! ≥ 0 in the new mode. A guard that is ≥ 0 at a step start (e.g. right after its own transition)
+//! is not armed until it has gone negative again.
+//!
+//! Limits: a guard that crosses and comes back within one step is not seen (bound the step with
+//! `max_step_s` / `step_s` below the fastest guard excursion); more than [`MAX_CHATTER_EVENTS`]
+//! firings in a row, each within [`CHATTER_WINDOW_TOLS`] tolerances of the previous one, stop the
+//! run with [`OdeError::Chattering`].
 
 use thiserror::Error;
 
@@ -81,6 +104,11 @@ pub struct Stats {
     pub jacobian_evaluations: usize,
     pub guard_events: usize,
     pub breakpoints: usize,
+    /// LU factorisations of the Newton iteration matrix (TR-BDF2).
+    pub lu_decompositions: usize,
+    /// Step attempts rejected because Newton did not converge (TR-BDF2); included in
+    /// `rejected_steps`.
+    pub newton_failures: usize,
 }
 
 /// Failures of the numbers during integration.
@@ -527,13 +555,12 @@ impl Locator {
             if iteration > BISECT_AFTER {
                 c = 0.5 * (a + b);
             } else {
-                for j in 0..g_b.len() {
-                    if armed(j) && g_b[j] >= 0.0 {
-                        let ga = w_a * self.g_a[j];
-                        let gb = w_b * g_b[j];
+                for (j, (&g_a, &g_b)) in self.g_a.iter().zip(g_b.iter()).enumerate() {
+                    if armed(j) && g_b >= 0.0 {
+                        let ga = w_a * g_a;
+                        let gb = w_b * g_b;
                         // ga < 0 ≤ gb, so the secant root lies in [a, b]
-                        let cj = b - (b - a) * gb / (gb - ga);
-                        c = c.min(cj);
+                        c = c.min(b - (b - a) * gb / (gb - ga));
                     }
                 }
             }

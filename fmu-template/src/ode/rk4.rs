@@ -1,6 +1,9 @@
 //! Classical fixed-step Runge–Kutta 4 (Hairer, Nørsett & Wanner, Solving ODEs I, §II.1,
 //! Table 1.2, "classical Runge–Kutta method").
 
+// Stage formulas read as the textbook writes them: one index over several vectors.
+#![allow(clippy::needless_range_loop)]
+
 use super::{HybridSystem, OdeError, Stats, Stepper};
 
 pub(super) struct Rk4 {
