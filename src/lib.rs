@@ -15,6 +15,7 @@ pub mod scenario;
 pub mod signal;
 pub mod simulate;
 pub mod study;
+pub mod validate;
 
 pub use error::Error;
 pub use understudy_runtime as runtime;
