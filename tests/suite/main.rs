@@ -2,3 +2,4 @@
 //! External checks name their published source beside the numbers.
 
 mod common;
+mod residual;
