@@ -268,7 +268,9 @@ mod tests {
 
     #[test]
     fn ramp_removal_zeroes_the_ends_and_adds_back() {
-        let x: Vec<f64> = (0..10).map(|i| 1.0 + 0.5 * i as f64 + (i as f64).sin()).collect();
+        let x: Vec<f64> = (0..10)
+            .map(|i| 1.0 + 0.5 * i as f64 + (i as f64).sin())
+            .collect();
         let (detrended, ramp) = remove_ramp(&x).unwrap();
         assert!(detrended[0].abs() < 1e-15 && detrended[9].abs() < 1e-14);
         let mut restored = detrended.clone();

@@ -410,14 +410,14 @@ impl RealEigen {
                 block[(j, j)] = value.re;
             }
         }
-        let inverse = self
-            .basis
-            .clone()
-            .try_inverse()
-            .ok_or(ResidualError::IllConditionedEigenvectors {
-                purpose,
-                condition: f64::INFINITY,
-            })?;
+        let inverse =
+            self.basis
+                .clone()
+                .try_inverse()
+                .ok_or(ResidualError::IllConditionedEigenvectors {
+                    purpose,
+                    condition: f64::INFINITY,
+                })?;
         Ok(&self.basis * block * inverse)
     }
 }
@@ -510,7 +510,8 @@ impl LinearModel {
                 after: v * (margin / v.norm()),
             })
             .collect();
-        let spectral_radius = |values: &[Complex64]| values.iter().map(|v| v.norm()).fold(0.0, f64::max);
+        let spectral_radius =
+            |values: &[Complex64]| values.iter().map(|v| v.norm()).fold(0.0, f64::max);
         if moved.is_empty() {
             let radius = spectral_radius(&eig.values);
             return Ok((
@@ -544,10 +545,7 @@ impl LinearModel {
             }
         }
         Ok((
-            LinearModel {
-                a,
-                ..self.clone()
-            },
+            LinearModel { a, ..self.clone() },
             StabilityReport {
                 margin,
                 moved,
@@ -617,9 +615,13 @@ impl ContinuousModel {
     pub fn discretise(&self, dt_s: f64) -> LinearModel {
         let (r, l) = (self.a.nrows(), self.b.ncols());
         let mut augmented = DMatrix::zeros(r + l, r + l);
-        augmented.view_mut((0, 0), (r, r)).copy_from(&(&self.a * dt_s));
+        augmented
+            .view_mut((0, 0), (r, r))
+            .copy_from(&(&self.a * dt_s));
         if l > 0 {
-            augmented.view_mut((0, r), (r, l)).copy_from(&(&self.b * dt_s));
+            augmented
+                .view_mut((0, r), (r, l))
+                .copy_from(&(&self.b * dt_s));
         }
         let e = expm(&augmented);
         LinearModel {
@@ -737,10 +739,13 @@ pub fn fit_dmd(
     let r = select_rank(&svd.s, x.nrows(), x.ncols(), config.rank, "rank")?;
     let (u, s, v) = svd.truncate(r);
     // Tu et al. 2014, Algorithm 2: Ã = Uᵀ Y V Σ⁻¹, modes Φ = Y V Σ⁻¹ W
-    let y_v_sinv = &y * &v * DMatrix::from_diagonal(&DVector::from_iterator(r, s.iter().map(|x| 1.0 / x)));
+    let y_v_sinv =
+        &y * &v * DMatrix::from_diagonal(&DVector::from_iterator(r, s.iter().map(|x| 1.0 / x)));
     let a_tilde = u.transpose() * &y_v_sinv;
     let b_tilde = DMatrix::zeros(r, 0);
-    finish_fit(snapshots, &x, u, a_tilde, b_tilde, y_v_sinv, svd.s, r, dt_s, config)
+    finish_fit(
+        snapshots, &x, u, a_tilde, b_tilde, y_v_sinv, svd.s, r, dt_s, config,
+    )
 }
 
 /// DMD with control and a KNOWN input matrix `b` (n × l) (Proctor, Brunton & Kutz, SIAM J. Appl.
@@ -765,11 +770,14 @@ pub fn fit_dmdc_known_b(
     let r = select_rank(&svd.s, x.nrows(), x.ncols(), config.rank, "rank")?;
     let (u, s, v) = svd.truncate(r);
     // Proctor et al. 2016, eq. (3.5): Ã = Uᵀ (Y − BΥ) V Σ⁻¹, B̃ = Uᵀ B
-    let y_v_sinv =
-        &y_free * &v * DMatrix::from_diagonal(&DVector::from_iterator(r, s.iter().map(|x| 1.0 / x)));
+    let y_v_sinv = &y_free
+        * &v
+        * DMatrix::from_diagonal(&DVector::from_iterator(r, s.iter().map(|x| 1.0 / x)));
     let a_tilde = u.transpose() * &y_v_sinv;
     let b_tilde = u.transpose() * b;
-    finish_fit(snapshots, &x, u, a_tilde, b_tilde, y_v_sinv, svd.s, r, dt_s, config)
+    finish_fit(
+        snapshots, &x, u, a_tilde, b_tilde, y_v_sinv, svd.s, r, dt_s, config,
+    )
 }
 
 /// DMD with control and an UNKNOWN input matrix (Proctor, Brunton & Kutz 2016, Section 3.2): the
@@ -814,7 +822,18 @@ pub fn fit_dmdc(
     let a_tilde = u_hat.transpose() * &a_full_on_u;
     let b_tilde = u_hat.transpose() * &y_v_sinv * u2.transpose();
     // modes Φ = Y Ṽ Σ̃⁻¹ Ũ₁ᵀ Û W (Proctor et al. 2016, eq. (3.14))
-    finish_fit(snapshots, &x, u_hat, a_tilde, b_tilde, a_full_on_u, svd_omega.s, r, dt_s, config)
+    finish_fit(
+        snapshots,
+        &x,
+        u_hat,
+        a_tilde,
+        b_tilde,
+        a_full_on_u,
+        svd_omega.s,
+        r,
+        dt_s,
+        config,
+    )
 }
 
 /// Shared tail of the fits: eigendecomposition, modes, amplitudes, mode energies, mode
@@ -836,7 +855,10 @@ fn finish_fit(
     let n = snapshots.nrows();
     let modes = mode_map.map(|v| Complex64::new(v, 0.0)) * &eig.vectors;
     // amplitudes b = Φ⁺ x₀ (least squares, as PyDMD)
-    let x0 = DVector::from_iterator(n, snapshots.column(0).iter().map(|&v| Complex64::new(v, 0.0)));
+    let x0 = DVector::from_iterator(
+        n,
+        snapshots.column(0).iter().map(|&v| Complex64::new(v, 0.0)),
+    );
     let amplitudes: Vec<Complex64> = modes
         .clone()
         .svd(true, true)
@@ -869,9 +891,8 @@ fn finish_fit(
     // mode selection: the most energetic ceil(keep·r) modes, conjugate partners kept together
     let keep = ((config.keep_modes * rank as f64).ceil() as usize).clamp(1, rank);
     let mut block_order: Vec<usize> = (0..eig.blocks.len()).collect();
-    block_order.sort_by(|&p, &q| {
-        mode_energy[eig.blocks[q].0].total_cmp(&mode_energy[eig.blocks[p].0])
-    });
+    block_order
+        .sort_by(|&p, &q| mode_energy[eig.blocks[q].0].total_cmp(&mode_energy[eig.blocks[p].0]));
     let mut kept_blocks = Vec::new();
     let mut kept_count = 0;
     for &k in &block_order {
@@ -1061,7 +1082,8 @@ mod tests {
     fn expm_of_a_rotation() {
         let m = DMatrix::from_row_slice(2, 2, &[0.0, -2.0, 2.0, 0.0]);
         let e = expm(&m);
-        let expected = DMatrix::from_row_slice(2, 2, &[2f64.cos(), -(2f64.sin()), 2f64.sin(), 2f64.cos()]);
+        let expected =
+            DMatrix::from_row_slice(2, 2, &[2f64.cos(), -(2f64.sin()), 2f64.sin(), 2f64.cos()]);
         assert!((e - expected).norm() < 1e-14);
     }
 
@@ -1083,11 +1105,7 @@ mod tests {
     #[test]
     fn mode_selection_keeps_the_energetic_pair() {
         // block-diagonal: a lightly damped oscillation carrying most energy + a weak real mode
-        let a = DMatrix::from_row_slice(
-            3,
-            3,
-            &[0.95, -0.2, 0.0, 0.2, 0.95, 0.0, 0.0, 0.0, 0.5],
-        );
+        let a = DMatrix::from_row_slice(3, 3, &[0.95, -0.2, 0.0, 0.2, 0.95, 0.0, 0.0, 0.0, 0.5]);
         let mut snapshots = DMatrix::zeros(3, 30);
         let mut z = DVector::from_vec(vec![1.0, 0.0, 0.01]);
         for k in 0..30 {

@@ -373,14 +373,20 @@ fn residual_norm(op: &dyn LinearOperator, x: &[f64], b: &[f64]) -> f64 {
 
 /// The largest eigenvalue of AᵀA (= ‖A‖₂²) by power iteration (common practice), to relative
 /// change `tolerance` or `max_iterations`.
-pub fn largest_eigenvalue_ata(op: &dyn LinearOperator, tolerance: f64, max_iterations: usize) -> f64 {
+pub fn largest_eigenvalue_ata(
+    op: &dyn LinearOperator,
+    tolerance: f64,
+    max_iterations: usize,
+) -> f64 {
     let n = op.ncols();
     if n == 0 || op.nrows() == 0 {
         return 0.0;
     }
     // A fixed, non-symmetric start vector: deterministic, and unlikely to be orthogonal to the
     // leading eigenvector.
-    let mut v: Vec<f64> = (0..n).map(|i| 1.0 + 0.5 * ((i as f64) * 0.7).sin()).collect();
+    let mut v: Vec<f64> = (0..n)
+        .map(|i| 1.0 + 0.5 * ((i as f64) * 0.7).sin())
+        .collect();
     let start_norm = norm(&v);
     v.iter_mut().for_each(|x| *x /= start_norm);
     let mut av = vec![0.0; op.nrows()];
@@ -454,8 +460,7 @@ pub fn fista(
         // restart when the momentum points uphill: (y − x)ᵀ(x − x_prev) > 0
         // (O'Donoghue & Candès 2015, gradient scheme)
         let uphill = settings.restart
-            && y
-                .iter()
+            && y.iter()
                 .zip(&x)
                 .zip(&x_previous)
                 .map(|((yi, xi), pi)| (yi - xi) * (xi - pi))
@@ -567,7 +572,10 @@ pub struct Compressed {
 /// Keep the largest `keep_fraction` of the orthonormal DCT coefficients of `signal`
 /// (at least one), and report the kept fraction and the relative reconstruction error.
 pub fn compress(signal: &[f64], keep_fraction: f64) -> Result<Compressed, ResidualError> {
-    compress_with(signal, &SparseConfig::default().with_keep_fraction(keep_fraction)?)
+    compress_with(
+        signal,
+        &SparseConfig::default().with_keep_fraction(keep_fraction)?,
+    )
 }
 
 /// [`compress`] with all settings.
@@ -665,7 +673,9 @@ mod tests {
         let n = 17;
         let indices = [0usize, 3, 4, 9, 16];
         let op = SampledInverseDct::new(n, &indices).unwrap();
-        let explicit = DMatrix::from_fn(indices.len(), n, |i, j| op.plan.inverse_entry(indices[i], j));
+        let explicit = DMatrix::from_fn(indices.len(), n, |i, j| {
+            op.plan.inverse_entry(indices[i], j)
+        });
         let x: Vec<f64> = (0..n).map(|i| (i as f64 * 0.37).cos()).collect();
         let (mut y1, mut y2) = (vec![0.0; 5], vec![0.0; 5]);
         op.apply(&x, &mut y1);
@@ -687,7 +697,13 @@ mod tests {
 
     #[test]
     fn omp_solves_an_exactly_sparse_square_system() {
-        let a = DMatrix::from_fn(6, 6, |i, j| if i == j { 2.0 } else { 0.1 * (i + 2 * j) as f64 });
+        let a = DMatrix::from_fn(6, 6, |i, j| {
+            if i == j {
+                2.0
+            } else {
+                0.1 * (i + 2 * j) as f64
+            }
+        });
         let mut x_true = vec![0.0; 6];
         x_true[1] = 3.0;
         x_true[4] = -1.0;
@@ -718,7 +734,13 @@ mod tests {
             let err = SparseConfig::default().with_keep_fraction(bad).unwrap_err();
             assert!(err.to_string().contains("keep_fraction"), "{err}");
         }
-        assert!(FistaSettings::new(0.0).unwrap_err().to_string().contains("lambda"));
-        assert!(OmpSettings::new(0).unwrap_err().to_string().contains("max_atoms"));
+        assert!(FistaSettings::new(0.0)
+            .unwrap_err()
+            .to_string()
+            .contains("lambda"));
+        assert!(OmpSettings::new(0)
+            .unwrap_err()
+            .to_string()
+            .contains("max_atoms"));
     }
 }

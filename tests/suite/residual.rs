@@ -83,12 +83,24 @@ fn dct_matches_scipy_for_odd_even_and_prime_lengths() {
     if let Some(r) = common::run_reference("residual_dct.py", &json!({ "vectors": vectors })) {
         let forward: Vec<Vec<f64>> = serde_json::from_value(r["dct"].clone()).unwrap();
         let inverse: Vec<Vec<f64>> = serde_json::from_value(r["idct"].clone()).unwrap();
+        assert_eq!(
+            (forward.len(), inverse.len()),
+            (vectors.len(), vectors.len())
+        );
         for ((v, f), i) in vectors.iter().zip(&forward).zip(&inverse) {
             let ours_f = dct(v).unwrap();
             let ours_i = idct(v).unwrap();
             for k in 0..v.len() {
-                assert!((ours_f[k] - f[k]).abs() < 1e-12, "dct n = {} k = {k}", v.len());
-                assert!((ours_i[k] - i[k]).abs() < 1e-12, "idct n = {} k = {k}", v.len());
+                assert!(
+                    (ours_f[k] - f[k]).abs() < 1e-12,
+                    "dct n = {} k = {k}",
+                    v.len()
+                );
+                assert!(
+                    (ours_i[k] - i[k]).abs() < 1e-12,
+                    "idct n = {} k = {k}",
+                    v.len()
+                );
             }
         }
     }
@@ -102,7 +114,10 @@ fn sensing_problem() -> (DMatrix<f64>, Vec<f64>, Vec<f64>) {
     let mut rng = ChaCha8Rng::seed_from_u64(2024);
     let a = random_matrix(&mut rng, m, n) / (m as f64).sqrt();
     let mut x = vec![0.0; n];
-    for (&j, &v) in [3usize, 10, 17, 40, 90].iter().zip(&[1.0, -0.7, 0.5, 0.3, -0.2]) {
+    for (&j, &v) in [3usize, 10, 17, 40, 90]
+        .iter()
+        .zip(&[1.0, -0.7, 0.5, 0.3, -0.2])
+    {
         x[j] = v;
     }
     let mut b = vec![0.0; m];
@@ -137,8 +152,12 @@ fn omp_recovers_the_support_and_matches_scikit_learn() {
     if let Some(r) = common::run_reference("residual_sparse.py", &input) {
         let sk_omp: Vec<f64> = serde_json::from_value(r["omp"].clone()).unwrap();
         let sk_lasso: Vec<f64> = serde_json::from_value(r["lasso"].clone()).unwrap();
+        assert_eq!((sk_omp.len(), sk_lasso.len()), (256, 256));
         for j in 0..sk_omp.len() {
-            assert!((solution.coefficients[j] - sk_omp[j]).abs() < 1e-10, "omp j = {j}");
+            assert!(
+                (solution.coefficients[j] - sk_omp[j]).abs() < 1e-10,
+                "omp j = {j}"
+            );
             // both solvers stop near the same unique minimiser: FISTA on a relative step of
             // 1e-13, coordinate descent on a duality gap of 1e-14·‖b‖²/m; the coefficient
             // differences are orders below 1e-6, which is what we assert
@@ -187,7 +206,11 @@ fn a_dct_sparse_trace_is_recovered_from_random_samples() {
         &RecoveryMethod::Omp(OmpSettings::new(4).unwrap()),
     )
     .unwrap();
-    assert!(error(&by_omp.signal) < 1e-10, "OMP error {}", error(&by_omp.signal));
+    assert!(
+        error(&by_omp.signal) < 1e-10,
+        "OMP error {}",
+        error(&by_omp.signal)
+    );
     let by_fista = recover_from_samples(
         n,
         &indices,
@@ -201,7 +224,11 @@ fn a_dct_sparse_trace_is_recovered_from_random_samples() {
     )
     .unwrap();
     // the ℓ1 penalty shrinks each coefficient by about λ·n/m; far below 1e-3 here
-    assert!(error(&by_fista.signal) < 1e-3, "FISTA error {}", error(&by_fista.signal));
+    assert!(
+        error(&by_fista.signal) < 1e-3,
+        "FISTA error {}",
+        error(&by_fista.signal)
+    );
 
     // compression keeps exactly the 4 coefficients and reports a tiny error
     let c = compress(&trace, 4.0 / n as f64).unwrap();
@@ -235,8 +262,14 @@ fn exact_dmd_finds_the_analytic_eigenvalues_of_a_rotation() {
     let snapshots = simulate(&a, &[1.0, 0.0], 21);
     let fit = fit_dmd(&snapshots, 0.1, &full_rank()).unwrap();
     let eig = sorted(fit.eigenvalues.clone());
-    assert!((eig[0] - Complex64::new(0.9, -0.2)).norm() < 1e-12, "{eig:?}");
-    assert!((eig[1] - Complex64::new(0.9, 0.2)).norm() < 1e-12, "{eig:?}");
+    assert!(
+        (eig[0] - Complex64::new(0.9, -0.2)).norm() < 1e-12,
+        "{eig:?}"
+    );
+    assert!(
+        (eig[1] - Complex64::new(0.9, 0.2)).norm() < 1e-12,
+        "{eig:?}"
+    );
     // the model reproduces the snapshots: y = C z, z⁺ = A z
     let mut z = fit.model.c.transpose() * snapshots.column(0);
     for k in 1..21 {
@@ -248,6 +281,8 @@ fn exact_dmd_finds_the_analytic_eigenvalues_of_a_rotation() {
 #[test]
 fn exact_dmd_matches_pydmd_on_random_stable_systems() {
     let mut rng = ChaCha8Rng::seed_from_u64(99);
+    let mut cases = Vec::new();
+    let mut ours_all = Vec::new();
     for trial in 0..3 {
         let n = 6;
         // A = Q D Q⁻¹ with known eigenvalues 0.95e^{±0.3i}, 0.8e^{±1.1i}, 0.6, −0.3 (analytic)
@@ -266,13 +301,14 @@ fn exact_dmd_matches_pydmd_on_random_stable_systems() {
         let a = &q * d * q.clone().try_inverse().unwrap();
         let x0: Vec<f64> = (0..n).map(|_| gaussian(&mut rng)).collect();
         let snapshots = simulate(&a, &x0, 40);
-        let fit = fit_dmd(&snapshots, 0.02, &full_rank().with_rank(RankSelection::Fixed(6)).unwrap())
-            .unwrap();
+        let fit = fit_dmd(
+            &snapshots,
+            0.02,
+            &full_rank().with_rank(RankSelection::Fixed(6)).unwrap(),
+        )
+        .unwrap();
         let ours = sorted(fit.eigenvalues.clone());
-        let mut analytic = vec![
-            Complex64::new(0.6, 0.0),
-            Complex64::new(-0.3, 0.0),
-        ];
+        let mut analytic = vec![Complex64::new(0.6, 0.0), Complex64::new(-0.3, 0.0)];
         for &(radius, angle) in &pairs {
             analytic.push(Complex64::from_polar(radius, angle));
             analytic.push(Complex64::from_polar(radius, -angle));
@@ -280,12 +316,20 @@ fn exact_dmd_matches_pydmd_on_random_stable_systems() {
         for (o, e) in ours.iter().zip(sorted(analytic)) {
             assert!((o - e).norm() < 1e-8, "trial {trial}: {o} vs {e}");
         }
-        // PyDMD DMD(svd_rank=6, exact=True)
-        let input = json!({ "kind": "dmd", "snapshots": rows_json(&snapshots), "svd_rank": 6 });
-        if let Some(r) = common::run_reference("residual_dmd.py", &input) {
-            let theirs: Vec<[f64; 2]> = serde_json::from_value(r["eigenvalues"].clone()).unwrap();
+        cases.push(json!({ "kind": "dmd", "snapshots": rows_json(&snapshots), "svd_rank": 6 }));
+        ours_all.push(ours);
+    }
+    // PyDMD DMD(svd_rank=6, exact=True)
+    if let Some(r) = common::run_reference("residual_dmd.py", &json!({ "cases": cases })) {
+        for (trial, ours) in ours_all.iter().enumerate() {
+            let theirs: Vec<[f64; 2]> =
+                serde_json::from_value(r["results"][trial]["eigenvalues"].clone()).unwrap();
+            assert_eq!(theirs.len(), ours.len());
             for (o, t) in ours.iter().zip(&theirs) {
-                assert!((o - Complex64::new(t[0], t[1])).norm() < 1e-8, "trial {trial}: {o} vs {t:?}");
+                assert!(
+                    (o - Complex64::new(t[0], t[1])).norm() < 1e-8,
+                    "trial {trial}: {o} vs {t:?}"
+                );
             }
         }
     }
@@ -313,14 +357,26 @@ fn dmd_with_known_input_matrix_recovers_the_unstable_open_loop() {
     let (x, u, b) = feedback_example();
     // plain DMD sees the closed loop A + BK = diag(0.5, 0.1) (Proctor et al. 2016, Section 3)
     let plain = sorted(fit_dmd(&x, 1.0, &full_rank()).unwrap().eigenvalues);
-    assert!((plain[0] - Complex64::new(0.1, 0.0)).norm() < 1e-10, "{plain:?}");
-    assert!((plain[1] - Complex64::new(0.5, 0.0)).norm() < 1e-10, "{plain:?}");
+    assert!(
+        (plain[0] - Complex64::new(0.1, 0.0)).norm() < 1e-10,
+        "{plain:?}"
+    );
+    assert!(
+        (plain[1] - Complex64::new(0.5, 0.0)).norm() < 1e-10,
+        "{plain:?}"
+    );
     // DMDc with known B recovers diag(1.5, 0.1)
     let config = DmdConfig::default().with_rank(RankSelection::Full).unwrap();
     let fit = fit_dmdc_known_b(&x, &u, &b, 1.0, &config).unwrap();
     let eig = sorted(fit.eigenvalues.clone());
-    assert!((eig[0] - Complex64::new(0.1, 0.0)).norm() < 1e-10, "{eig:?}");
-    assert!((eig[1] - Complex64::new(1.5, 0.0)).norm() < 1e-10, "{eig:?}");
+    assert!(
+        (eig[0] - Complex64::new(0.1, 0.0)).norm() < 1e-10,
+        "{eig:?}"
+    );
+    assert!(
+        (eig[1] - Complex64::new(1.5, 0.0)).norm() < 1e-10,
+        "{eig:?}"
+    );
     // the default stability enforcement moved 1.5 onto 0.999 and left 0.1
     assert_eq!(fit.stability.moved.len(), 1);
     assert!((fit.stability.moved[0].before - Complex64::new(1.5, 0.0)).norm() < 1e-10);
@@ -329,14 +385,19 @@ fn dmd_with_known_input_matrix_recovers_the_unstable_open_loop() {
     assert!((after[0] - Complex64::new(0.1, 0.0)).norm() < 1e-10);
     assert!((after[1] - Complex64::new(0.999, 0.0)).norm() < 1e-10);
     // PyDMD DMDc(svd_rank=-1).fit(X, I, B=B)
-    let input = json!({
+    let input = json!({ "cases": [{
         "kind": "dmdc_known", "snapshots": rows_json(&x), "inputs": rows_json(&u),
         "b": rows_json(&b), "svd_rank": -1
-    });
+    }]});
     if let Some(r) = common::run_reference("residual_dmd.py", &input) {
+        let r = &r["results"][0];
         let theirs: Vec<[f64; 2]> = serde_json::from_value(r["eigenvalues"].clone()).unwrap();
+        assert_eq!(theirs.len(), 2);
         for (o, t) in eig.iter().zip(&theirs) {
-            assert!((o - Complex64::new(t[0], t[1])).norm() < 1e-8, "{o} vs {t:?}");
+            assert!(
+                (o - Complex64::new(t[0], t[1])).norm() < 1e-8,
+                "{o} vs {t:?}"
+            );
         }
     }
 }
@@ -361,14 +422,19 @@ fn dmd_with_unknown_input_matrix_recovers_a_and_b() {
     assert!((&a_full - &a).norm() < 1e-9, "A = {a_full}");
     assert!((&b_full - &b).norm() < 1e-9, "B = {b_full}");
     // PyDMD DMDc(svd_rank=-1, svd_rank_omega=-1).fit(X, I)
-    let input = json!({
+    let input = json!({ "cases": [{
         "kind": "dmdc_unknown", "snapshots": rows_json(&x), "inputs": rows_json(&u),
         "svd_rank": -1, "svd_rank_omega": -1
-    });
+    }]});
     if let Some(r) = common::run_reference("residual_dmd.py", &input) {
+        let r = &r["results"][0];
         let theirs: Vec<[f64; 2]> = serde_json::from_value(r["eigenvalues"].clone()).unwrap();
+        assert_eq!(theirs.len(), 3);
         for (o, t) in sorted(fit.eigenvalues.clone()).iter().zip(&theirs) {
-            assert!((o - Complex64::new(t[0], t[1])).norm() < 1e-8, "{o} vs {t:?}");
+            assert!(
+                (o - Complex64::new(t[0], t[1])).norm() < 1e-8,
+                "{o} vs {t:?}"
+            );
         }
         let their_b = matrix_from_json(&r["b"]);
         assert!((&b_full - their_b).norm() < 1e-8);
@@ -390,7 +456,10 @@ fn delay_embedded_dmdc_reproduces_a_second_order_response() {
     let fit = fit_dmdc(&embedded.states, &embedded.inputs, 0.01, &full_rank()).unwrap();
     let eig = sorted(fit.eigenvalues.clone());
     // characteristic roots of z² − 1.6 z + 0.8: 0.8 ± 0.4i
-    assert!((eig[0] - Complex64::new(0.8, -0.4)).norm() < 1e-9, "{eig:?}");
+    assert!(
+        (eig[0] - Complex64::new(0.8, -0.4)).norm() < 1e-9,
+        "{eig:?}"
+    );
     assert!((eig[1] - Complex64::new(0.8, 0.4)).norm() < 1e-9, "{eig:?}");
 }
 
@@ -409,21 +478,46 @@ fn optimal_hard_threshold_finds_rank_three_in_noise() {
     let (rows, cols) = (500, 250);
     let left = random_matrix(&mut rng, rows, 3).qr().q();
     let right = random_matrix(&mut rng, cols, 3).qr().q();
-    let signal = &left * DMatrix::from_diagonal(&DVector::from_vec(vec![30.0, 20.0, 12.0])) * right.transpose();
+    let signal = &left
+        * DMatrix::from_diagonal(&DVector::from_vec(vec![30.0, 20.0, 12.0]))
+        * right.transpose();
     let sigma = 0.1;
     let noisy = signal + random_matrix(&mut rng, rows, cols) * sigma;
     let s: Vec<f64> = noisy.singular_values().iter().copied().collect();
     let mut s = s;
     s.sort_by(|a, b| b.total_cmp(a));
-    let known = select_rank(&s, rows, cols, RankSelection::HardThreshold { noise: Some(sigma) }, "rank").unwrap();
-    let unknown = select_rank(&s, rows, cols, RankSelection::HardThreshold { noise: None }, "rank").unwrap();
+    let known = select_rank(
+        &s,
+        rows,
+        cols,
+        RankSelection::HardThreshold { noise: Some(sigma) },
+        "rank",
+    )
+    .unwrap();
+    let unknown = select_rank(
+        &s,
+        rows,
+        cols,
+        RankSelection::HardThreshold { noise: None },
+        "rank",
+    )
+    .unwrap();
     assert_eq!(known, 3);
     assert_eq!(unknown, 3);
     // energy fraction, the rule of PyDMD's compute_rank: σ = (3, 2, 1) carry 9/14, 13/14, 1
     let small = [3.0, 2.0, 1.0];
-    assert_eq!(select_rank(&small, 3, 10, RankSelection::Energy(0.9), "rank").unwrap(), 2);
-    assert_eq!(select_rank(&small, 3, 10, RankSelection::Energy(0.95), "rank").unwrap(), 3);
-    assert_eq!(select_rank(&small, 3, 10, RankSelection::Energy(0.5), "rank").unwrap(), 1);
+    assert_eq!(
+        select_rank(&small, 3, 10, RankSelection::Energy(0.9), "rank").unwrap(),
+        2
+    );
+    assert_eq!(
+        select_rank(&small, 3, 10, RankSelection::Energy(0.95), "rank").unwrap(),
+        3
+    );
+    assert_eq!(
+        select_rank(&small, 3, 10, RankSelection::Energy(0.5), "rank").unwrap(),
+        1
+    );
 }
 
 // ------------------------------------------------- continuous time and stability enforcement
@@ -445,13 +539,19 @@ fn continuous_time_conversion_round_trips_a_zoh_discretisation() {
     };
     let mut discrete = continuous.discretise(dt);
     // scipy.signal.cont2discrete(method="zoh")
-    if let Some(r) =
-        common::run_reference("residual_zoh.py", &json!({"a": rows_json(&a_c), "b": rows_json(&b_c), "dt": dt}))
-    {
+    if let Some(r) = common::run_reference(
+        "residual_zoh.py",
+        &json!({"a": rows_json(&a_c), "b": rows_json(&b_c), "dt": dt}),
+    ) {
         let (a_d, b_d) = (matrix_from_json(&r["a"]), matrix_from_json(&r["b"]));
         assert!((&discrete.a - &a_d).norm() < 1e-12);
         assert!((&discrete.b - &b_d).norm() < 1e-12);
-        discrete = LinearModel { a: a_d, b: b_d, c: DMatrix::identity(n, n), dt_s: dt };
+        discrete = LinearModel {
+            a: a_d,
+            b: b_d,
+            c: DMatrix::identity(n, n),
+            dt_s: dt,
+        };
     }
     let back = discrete.to_continuous().unwrap();
     assert!((&back.a - &a_c).norm() < 1e-9, "A_c = {}", back.a);
@@ -469,7 +569,10 @@ fn continuous_time_conversion_round_trips_a_zoh_discretisation() {
         dt_s: dt,
     };
     let err = flipped.to_continuous().unwrap_err();
-    assert!(matches!(err, ResidualError::NoRealLogarithm { index: 0, .. }), "{err}");
+    assert!(
+        matches!(err, ResidualError::NoRealLogarithm { index: 0, .. }),
+        "{err}"
+    );
     assert!(err.to_string().contains("negative real axis"));
 }
 
@@ -479,7 +582,9 @@ fn stability_enforcement_moves_only_the_unstable_eigenvalue() {
     let d = DMatrix::from_row_slice(
         4,
         4,
-        &[1.2, 0.0, 0.0, 0.0, 0.0, 0.5, 0.0, 0.0, 0.0, 0.0, 0.3, 0.4, 0.0, 0.0, -0.4, 0.3],
+        &[
+            1.2, 0.0, 0.0, 0.0, 0.0, 0.5, 0.0, 0.0, 0.0, 0.0, 0.3, 0.4, 0.0, 0.0, -0.4, 0.3,
+        ],
     );
     let q = DMatrix::identity(4, 4) + 0.3 * random_matrix(&mut rng, 4, 4);
     let model = LinearModel {
@@ -513,13 +618,19 @@ fn bad_input_is_rejected_naming_the_setting() {
     for bad in [0.0, 1.5] {
         let err = SparseConfig::default().with_keep_fraction(bad).unwrap_err();
         assert!(err.to_string().contains("keep_fraction"), "{err}");
-        assert!(compress(&[1.0, 2.0], bad).unwrap_err().to_string().contains("keep_fraction"));
+        assert!(compress(&[1.0, 2.0], bad)
+            .unwrap_err()
+            .to_string()
+            .contains("keep_fraction"));
         let err = DmdConfig::default().with_keep_modes(bad).unwrap_err();
         assert!(err.to_string().contains("keep_modes"), "{err}");
     }
     // NaN in a trace: the error names the index
     let err = compress(&[1.0, 2.0, f64::NAN], 0.5).unwrap_err();
-    assert!(matches!(err, ResidualError::NonFinite { index: 2, .. }), "{err}");
+    assert!(
+        matches!(err, ResidualError::NonFinite { index: 2, .. }),
+        "{err}"
+    );
     let err = recover_from_samples(
         8,
         &[0, 3],
@@ -532,15 +643,56 @@ fn bad_input_is_rejected_naming_the_setting() {
     let mut snapshots = DMatrix::from_fn(3, 10, |i, j| (i + j) as f64);
     snapshots[(1, 4)] = f64::NAN;
     let err = fit_dmd(&snapshots, 0.1, &DmdConfig::default()).unwrap_err();
-    assert!(matches!(err, ResidualError::NonFiniteMatrix { row: 1, column: 4, .. }), "{err}");
+    assert!(
+        matches!(
+            err,
+            ResidualError::NonFiniteMatrix {
+                row: 1,
+                column: 4,
+                ..
+            }
+        ),
+        "{err}"
+    );
     // rank larger than the data
-    let snapshots = simulate(&DMatrix::from_row_slice(2, 2, &[0.9, -0.2, 0.2, 0.9]), &[1.0, 0.0], 21);
-    let config = DmdConfig::default().with_rank(RankSelection::Fixed(3)).unwrap();
+    let snapshots = simulate(
+        &DMatrix::from_row_slice(2, 2, &[0.9, -0.2, 0.2, 0.9]),
+        &[1.0, 0.0],
+        21,
+    );
+    let config = DmdConfig::default()
+        .with_rank(RankSelection::Fixed(3))
+        .unwrap();
     let err = fit_dmd(&snapshots, 0.1, &config).unwrap_err();
-    assert!(matches!(err, ResidualError::RankTooLarge { setting: "rank", requested: 3, max: 2 }), "{err}");
-    assert!(DmdConfig::default().with_rank(RankSelection::Fixed(0)).unwrap_err().to_string().contains("rank"));
+    assert!(
+        matches!(
+            err,
+            ResidualError::RankTooLarge {
+                setting: "rank",
+                requested: 3,
+                max: 2
+            }
+        ),
+        "{err}"
+    );
+    assert!(DmdConfig::default()
+        .with_rank(RankSelection::Fixed(0))
+        .unwrap_err()
+        .to_string()
+        .contains("rank"));
     // a sample index outside the trace
-    let err = recover_from_samples(4, &[1, 9], &[0.0, 0.0], &RecoveryMethod::Omp(OmpSettings::new(1).unwrap()))
-        .unwrap_err();
-    assert!(matches!(err, ResidualError::SampleIndexOutOfRange { index: 9, n: 4, .. }), "{err}");
+    let err = recover_from_samples(
+        4,
+        &[1, 9],
+        &[0.0, 0.0],
+        &RecoveryMethod::Omp(OmpSettings::new(1).unwrap()),
+    )
+    .unwrap_err();
+    assert!(
+        matches!(
+            err,
+            ResidualError::SampleIndexOutOfRange { index: 9, n: 4, .. }
+        ),
+        "{err}"
+    );
 }
