@@ -131,7 +131,7 @@ impl DmdConfig {
 
 /// λ*(β) = sqrt(2(β+1) + 8β / ((β+1) + sqrt(β² + 14β + 1))): the threshold coefficient for a
 /// known noise level, τ = λ*(β)·√n·σ for an n×m matrix with β = m/n ≤ 1
-/// (Gavish & Donoho 2014, eq. (11)).
+/// (Gavish & Donoho 2014).
 pub fn hard_threshold_known_noise(beta: f64) -> f64 {
     (2.0 * (beta + 1.0) + 8.0 * beta / ((beta + 1.0) + (beta * beta + 14.0 * beta + 1.0).sqrt()))
         .sqrt()
@@ -151,8 +151,9 @@ pub fn marchenko_pastur_median(beta: f64) -> f64 {
     let integrand = |phi: f64| {
         let t = mid - half * phi.cos();
         if t <= 0.0 {
-            // β = 1, φ = 0: the limit of sin²φ / (2 − 2cos φ) is 1, times half² / (2π)
-            return half * half / (2.0 * std::f64::consts::PI * beta) / (half.max(1e-300));
+            // β = 1, φ = 0: t ≈ half·φ²/2 and (half·sin φ)² ≈ half²·φ², so the limit is
+            // half / (πβ)
+            return half / (std::f64::consts::PI * beta);
         }
         (half * phi.sin()).powi(2) / (2.0 * std::f64::consts::PI * beta * t)
     };
@@ -179,12 +180,12 @@ pub fn marchenko_pastur_median(beta: f64) -> f64 {
 }
 
 /// ω(β) = λ*(β) / sqrt(μ_β): the threshold coefficient for unknown noise, τ = ω(β)·median(σ_i)
-/// (Gavish & Donoho 2014, eq. (13)), with μ_β computed numerically.
+/// (Gavish & Donoho 2014), with μ_β computed numerically.
 pub fn hard_threshold_unknown_noise(beta: f64) -> f64 {
     hard_threshold_known_noise(beta) / marchenko_pastur_median(beta).sqrt()
 }
 
-/// The cubic approximation ω(β) ≈ 0.56β³ − 0.95β² + 1.82β + 1.43 (Gavish & Donoho 2014, eq. (5)).
+/// The cubic approximation ω(β) ≈ 0.56β³ − 0.95β² + 1.82β + 1.43 (Gavish & Donoho 2014).
 pub fn hard_threshold_unknown_noise_approx(beta: f64) -> f64 {
     0.56 * beta.powi(3) - 0.95 * beta.powi(2) + 1.82 * beta + 1.43
 }
@@ -557,7 +558,7 @@ impl LinearModel {
     /// The continuous-time equivalent: A_c = V diag(ln λ / Δt) V⁻¹ (principal logarithm, real
     /// because eigenvalues come in conjugate pairs), and, for a zero-order hold on the input,
     /// B_c from B = A_c⁻¹ (A − I) B_c, i.e. B_c = V diag(ln λ / (Δt (λ − 1))) V⁻¹ B (standard
-    /// ZOH relation, e.g. Franklin, Powell & Workman, Digital Control of Dynamic Systems, §4.3;
+    /// ZOH relation, e.g. Franklin, Powell & Workman, Digital Control of Dynamic Systems;
     /// the factor tends to 1/Δt as λ → 1, so an integrator is fine).
     ///
     /// Errors when an eigenvalue is zero or on the negative real axis: no real logarithm exists.
@@ -634,7 +635,7 @@ impl ContinuousModel {
 }
 
 /// Matrix exponential by scaling and squaring with a degree-18 Taylor polynomial
-/// (Moler & Van Loan, SIAM Review 2003, method 3; the scaled norm ≤ 1/2 bounds the truncation
+/// (Moler & Van Loan, SIAM Review 2003; the scaled norm ≤ 1/2 bounds the truncation
 /// error by 0.5¹⁹/19! ≈ 1e-23 relative).
 pub fn expm(m: &DMatrix<f64>) -> DMatrix<f64> {
     let n = m.nrows();
@@ -769,7 +770,7 @@ pub fn fit_dmdc_known_b(
     let svd = thin_svd(&x)?;
     let r = select_rank(&svd.s, x.nrows(), x.ncols(), config.rank, "rank")?;
     let (u, s, v) = svd.truncate(r);
-    // Proctor et al. 2016, eq. (3.5): Ã = Uᵀ (Y − BΥ) V Σ⁻¹, B̃ = Uᵀ B
+    // Proctor et al. 2016, Section 3.1: Ã = Uᵀ (Y − BΥ) V Σ⁻¹, B̃ = Uᵀ B
     let y_v_sinv = &y_free
         * &v
         * DMatrix::from_diagonal(&DVector::from_iterator(r, s.iter().map(|x| 1.0 / x)));
@@ -814,14 +815,14 @@ pub fn fit_dmdc(
     let svd_y = thin_svd(&y)?;
     let r = select_rank(&svd_y.s, y.nrows(), y.ncols(), config.rank, "rank")?;
     let u_hat = svd_y.u.columns(0, r).into_owned();
-    // Proctor et al. 2016, eq. (3.13): Ã = Ûᵀ Y Ṽ Σ̃⁻¹ Ũ₁ᵀ Û, B̃ = Ûᵀ Y Ṽ Σ̃⁻¹ Ũ₂ᵀ
+    // Proctor et al. 2016, Section 3.2: Ã = Ûᵀ Y Ṽ Σ̃⁻¹ Ũ₁ᵀ Û, B̃ = Ûᵀ Y Ṽ Σ̃⁻¹ Ũ₂ᵀ
     let y_v_sinv = &y
         * &v_omega
         * DMatrix::from_diagonal(&DVector::from_iterator(p, s_omega.iter().map(|x| 1.0 / x)));
     let a_full_on_u = &y_v_sinv * u1.transpose() * &u_hat; // n × r
     let a_tilde = u_hat.transpose() * &a_full_on_u;
     let b_tilde = u_hat.transpose() * &y_v_sinv * u2.transpose();
-    // modes Φ = Y Ṽ Σ̃⁻¹ Ũ₁ᵀ Û W (Proctor et al. 2016, eq. (3.14))
+    // modes Φ = Y Ṽ Σ̃⁻¹ Ũ₁ᵀ Û W (Proctor et al. 2016, Section 3.2)
     finish_fit(
         snapshots,
         &x,
@@ -1067,10 +1068,16 @@ mod tests {
 
     #[test]
     fn marchenko_pastur_median_of_the_square_case() {
-        // Gavish & Donoho 2014, Table: ω(1) ≈ 2.858 for square matrices
+        // Gavish & Donoho 2014: ω(1) ≈ 2.858 for square matrices
         let omega = hard_threshold_unknown_noise(1.0);
         assert!((omega - 2.858).abs() < 1e-3, "{omega}");
-        // the cubic approximation is within 0.02 over (0, 1] (Gavish & Donoho 2014, eq. (5))
+        // the Marchenko–Pastur median for β = 1 is ≈ 0.6528 (from memory); the CDF integrates
+        // to 1 over the whole support, so the median lies strictly inside [a, b]
+        let median = marchenko_pastur_median(1.0);
+        assert!((median - 0.6528).abs() < 1e-3, "{median}");
+        let m_small = marchenko_pastur_median(0.25);
+        assert!(m_small > 0.25 && m_small < 2.25, "{m_small}");
+        // the cubic approximation of Gavish & Donoho 2014 is a close fit; 0.02 is our tolerance
         for i in 1..=20 {
             let beta = i as f64 / 20.0;
             let d = hard_threshold_unknown_noise(beta) - hard_threshold_unknown_noise_approx(beta);

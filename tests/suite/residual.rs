@@ -153,16 +153,24 @@ fn omp_recovers_the_support_and_matches_scikit_learn() {
         let sk_omp: Vec<f64> = serde_json::from_value(r["omp"].clone()).unwrap();
         let sk_lasso: Vec<f64> = serde_json::from_value(r["lasso"].clone()).unwrap();
         assert_eq!((sk_omp.len(), sk_lasso.len()), (256, 256));
+        let max_lasso_difference = (0..256)
+            .map(|j| (lasso.coefficients[j] - sk_lasso[j]).abs())
+            .fold(0.0, f64::max);
+        eprintln!(
+            "FISTA: {} iterations, max |x − x_sklearn| = {max_lasso_difference:.2e}",
+            lasso.iterations
+        );
         for j in 0..sk_omp.len() {
             assert!(
                 (solution.coefficients[j] - sk_omp[j]).abs() < 1e-10,
                 "omp j = {j}"
             );
             // both solvers stop near the same unique minimiser: FISTA on a relative step of
-            // 1e-13, coordinate descent on a duality gap of 1e-14·‖b‖²/m; the coefficient
-            // differences are orders below 1e-6, which is what we assert
+            // 1e-13 (with restart it converges linearly once the support settles), coordinate
+            // descent on a duality gap of 1e-14·‖b‖²/m; measured differences are ~1e-13, so
+            // 1e-9 leaves room for other BLAS builds without hiding a wrong minimiser
             assert!(
-                (lasso.coefficients[j] - sk_lasso[j]).abs() < 1e-6,
+                (lasso.coefficients[j] - sk_lasso[j]).abs() < 1e-9,
                 "lasso j = {j}: {} vs {}",
                 lasso.coefficients[j],
                 sk_lasso[j]
@@ -469,7 +477,7 @@ fn delay_embedded_dmdc_reproduces_a_second_order_response() {
 fn optimal_hard_threshold_finds_rank_three_in_noise() {
     // Gavish & Donoho 2014: λ*(1) = 4/√3
     assert!((hard_threshold_known_noise(1.0) - 4.0 / 3f64.sqrt()).abs() < 1e-14);
-    // numerical ω(β) against the cubic approximation (Gavish & Donoho 2014, eq. (5))
+    // numerical ω(β) against the cubic approximation (Gavish & Donoho 2014)
     for beta in [0.1, 0.5, 1.0] {
         let d = hard_threshold_unknown_noise(beta) - hard_threshold_unknown_noise_approx(beta);
         assert!(d.abs() < 0.02, "β = {beta}: {d}");
