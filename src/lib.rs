@@ -14,6 +14,7 @@ pub mod reduce;
 pub mod scenario;
 pub mod signal;
 pub mod simulate;
+pub mod residual;
 pub mod study;
 pub mod validate;
 

@@ -6,4 +6,5 @@ mod comtrade;
 mod full_converter;
 mod mbam;
 mod ode;
+mod residual;
 mod simulate_cli;
