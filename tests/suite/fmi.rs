@@ -678,6 +678,25 @@ fn bad_calls_return_errors_and_log_a_line_naming_the_call() {
         .iter()
         .any(|l| l.contains("does not match the model file")));
 
+    // no callbacks at all: NULL, not a crash
+    let (name, guid, uri_c) = (
+        CString::new("n").unwrap(),
+        CString::new(e.guid.as_str()).unwrap(),
+        CString::new(uri.as_str()).unwrap(),
+    );
+    let c = unsafe {
+        (api.instantiate)(
+            name.as_ptr(),
+            CO_SIMULATION,
+            guid.as_ptr(),
+            uri_c.as_ptr(),
+            std::ptr::null(),
+            0,
+            0,
+        )
+    };
+    assert!(c.is_null());
+
     // a null component is an error, not a crash
     assert_eq!(
         unsafe { (api.do_step)(std::ptr::null_mut(), 0.0, 1e-3, 0) },
