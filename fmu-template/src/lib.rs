@@ -4,5 +4,8 @@
 
 #![deny(clippy::float_cmp)]
 
+pub mod cosim;
+pub mod fmi2;
 pub mod ode;
 pub mod unit;
+pub mod variables;

@@ -3,6 +3,7 @@
 
 mod common;
 mod comtrade;
+mod fmi;
 mod full_converter;
 mod mbam;
 mod ode;

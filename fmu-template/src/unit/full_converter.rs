@@ -346,6 +346,24 @@ pub struct FullConverter {
     /// A step of the current controller's dq reference at a time, overriding the outer loops
     /// (for checking the inner loop; studies leave it empty).
     pub current_ref_step: Option<(f64, C64)>,
+    /// The terminal voltage held by a co-simulation host; `None` when the unit sees its grid
+    /// equivalent (`grid`).
+    pub terminal_input: Option<TerminalInput>,
+}
+
+/// A terminal voltage phasor (network frame, pu) and grid frequency (pu) set by a host and held
+/// until it sets the next one.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct TerminalInput {
+    pub v_re: f64,
+    pub v_im: f64,
+    pub frequency_pu: f64,
+}
+
+impl TerminalInput {
+    pub fn voltage(&self) -> C64 {
+        C64::new(self.v_re, self.v_im)
+    }
 }
 
 impl FullConverter {
@@ -394,38 +412,91 @@ impl FullConverter {
         };
         // phasors with the terminal voltage on the real axis, then rotated so that the grid
         // source has angle 0
+        check_injection(&params, op.p, op.q, u)?;
         let v0 = C64::new(u, 0.0);
         let i0 = C64::new(op.p, -op.q) / u;
-        if i0.norm() > params.i_max {
-            return Err(UnitError::NoSteadyState {
-                reason: format!(
-                    "P = {} pu, Q = {} pu at U = {u:.4} pu needs {:.4} pu current, above unit.i_max = {} pu",
-                    op.p,
-                    op.q,
-                    i0.norm(),
-                    params.i_max
-                ),
-            });
-        }
-        if u < params.dip_threshold + params.dip_hysteresis {
-            return Err(UnitError::NoSteadyState {
-                reason: format!(
-                    "terminal voltage {u:.4} pu lies in the dip band (threshold {} pu + hysteresis {} pu): \
-                     the unit would start in fault ride-through",
-                    params.dip_threshold, params.dip_hysteresis
-                ),
-            });
-        }
         let e = v0 - z * i0;
         let rot = C64::from_polar(1.0, -e.arg());
         let (v, i) = (v0 * rot, i0 * rot);
+        let schedule = GridSchedule::new(e.norm(), z, disturbance)?;
+        Self::at_steady_state(params, schedule, None, v, i, op.p, op.q)
+    }
+
+    /// Build the unit at a true steady state with its terminal voltage given by the host (a
+    /// co-simulation master) instead of a grid equivalent: `voltage` is the terminal voltage
+    /// phasor in the network frame (any angle), `frequency_pu` the grid frequency (reported
+    /// only: the PLL takes the frequency from the phasor's angle), (`p`, `q`) the injection.
+    /// The terminal voltage then stays at the value set by [`Self::set_terminal_input`] until
+    /// the next call (held over a communication step).
+    pub fn initialise_at_terminal(
+        params: FullConverterParams,
+        voltage: C64,
+        frequency_pu: f64,
+        p: f64,
+        q: f64,
+    ) -> Result<(Self, Vec<f64>), UnitError> {
+        params.validate()?;
+        check(
+            "terminal_voltage",
+            voltage.norm(),
+            voltage.norm() > 0.2
+                && voltage.norm() < 1.5
+                && voltage.re.is_finite()
+                && voltage.im.is_finite(),
+            "a terminal voltage magnitude in (0.2, 1.5) pu",
+        )?;
+        check(
+            "grid_frequency_pu",
+            frequency_pu,
+            frequency_pu > 0.5 && frequency_pu < 1.5,
+            "a grid frequency in (0.5, 1.5) pu",
+        )?;
+        check_injection(&params, p, q, voltage.norm())?;
+        // S = v·conj(i)  ⇒  i = conj(S / v)
+        let i = (C64::new(p, q) / voltage).conj();
+        let schedule = GridSchedule::new(
+            voltage.norm(),
+            C64::new(0.0, 0.0),
+            &super::Disturbance::None,
+        )?;
+        let held = TerminalInput {
+            v_re: voltage.re,
+            v_im: voltage.im,
+            frequency_pu,
+        };
+        Self::at_steady_state(params, schedule, Some(held), voltage, i, p, q)
+    }
+
+    /// Replace the held terminal voltage (host-driven units only).
+    ///
+    /// # Panics
+    /// If the unit was built by [`Self::initialise`] (its terminal voltage follows its grid
+    /// equivalent; a caller bug).
+    pub fn set_terminal_input(&mut self, input: TerminalInput) {
+        assert!(
+            self.terminal_input.is_some(),
+            "set_terminal_input on a unit connected to a grid equivalent"
+        );
+        self.terminal_input = Some(input);
+    }
+
+    /// The steady state at terminal voltage `v` and current `i` (network frame).
+    fn at_steady_state(
+        params: FullConverterParams,
+        schedule: GridSchedule,
+        terminal_input: Option<TerminalInput>,
+        v: C64,
+        i: C64,
+        p_ref: f64,
+        q_ref: f64,
+    ) -> Result<(Self, Vec<f64>), UnitError> {
+        let u = v.norm();
         let theta = v.arg();
         let (r, l) = (params.filter_r, params.filter_l);
         let vc = v + C64::new(r, l) * i;
         let p_conv = (vc * i.conj()).re;
         // PLL-frame current: active along v, reactive current i_r = −i_q (positive = capacitive)
         let i_dq = i * C64::from_polar(1.0, -theta);
-        let schedule = GridSchedule::new(e.norm(), z, disturbance)?;
         let mut x = vec![0.0; ix::COUNT];
         x[ix::I_RE] = i.re;
         x[ix::I_IM] = i.im;
@@ -438,8 +509,8 @@ impl FullConverter {
         x[ix::DC_INT] = i_dq.re;
         x[ix::SOURCE_P] = p_conv;
         x[ix::U_MEAS] = u;
-        x[ix::P_MEAS] = op.p;
-        x[ix::Q_MEAS] = op.q;
+        x[ix::P_MEAS] = p_ref;
+        x[ix::Q_MEAS] = q_ref;
         x[ix::Q_INT] = -i_dq.im;
         x[ix::RECOVERY_CAP] = params.i_max;
         let modes = Modes {
@@ -455,7 +526,7 @@ impl FullConverter {
         };
         let unit = Self {
             setpoints: Setpoints {
-                q_ref: op.q,
+                q_ref,
                 u_ref: u,
                 source_power: p_conv,
             },
@@ -463,6 +534,7 @@ impl FullConverter {
             grid: schedule,
             modes,
             current_ref_step: None,
+            terminal_input,
         };
         let s = unit.signals(0.0, &x);
         if s.reactive_current_unlimited.abs() > s.reactive_cap + 1e-12 {
@@ -497,8 +569,13 @@ impl FullConverter {
         let p = &self.params;
         let m = &self.modes;
         let i = C64::new(x[ix::I_RE], x[ix::I_IM]);
-        let v = self.grid.terminal_voltage(m.grid_phase, t_s, p.f_nom_hz, i);
-        let (_, f_grid) = self.grid.source(m.grid_phase, t_s, p.f_nom_hz);
+        let (v, f_grid) = match self.terminal_input {
+            Some(held) => (held.voltage(), held.frequency_pu),
+            None => (
+                self.grid.terminal_voltage(m.grid_phase, t_s, p.f_nom_hz, i),
+                self.grid.source(m.grid_phase, t_s, p.f_nom_hz).1,
+            ),
+        };
         let theta = x[ix::PLL_ANGLE];
         let to_dq = C64::from_polar(1.0, -theta);
         let v_dq = v * to_dq;
@@ -605,6 +682,30 @@ impl FullConverter {
             s.v_dq.im
         }
     }
+}
+
+/// The injection (p, q) at terminal voltage magnitude `u` must fit the current limit and `u`
+/// must lie above the dip band, or the unit has no calm steady state there.
+fn check_injection(params: &FullConverterParams, p: f64, q: f64, u: f64) -> Result<(), UnitError> {
+    let i_abs = C64::new(p, -q).norm() / u;
+    if i_abs > params.i_max {
+        return Err(UnitError::NoSteadyState {
+            reason: format!(
+                "P = {p} pu, Q = {q} pu at U = {u:.4} pu needs {i_abs:.4} pu current, above unit.i_max = {} pu",
+                params.i_max
+            ),
+        });
+    }
+    if u < params.dip_threshold + params.dip_hysteresis {
+        return Err(UnitError::NoSteadyState {
+            reason: format!(
+                "terminal voltage {u:.4} pu lies in the dip band (threshold {} pu + hysteresis {} pu): \
+                 the unit would start in fault ride-through",
+                params.dip_threshold, params.dip_hysteresis
+            ),
+        });
+    }
+    Ok(())
 }
 
 fn terminal_voltage_checked(op: &OperatingPoint, z: C64) -> Result<f64, UnitError> {
