@@ -6,6 +6,7 @@ use thiserror::Error;
 use understudy_runtime::ode::OdeError;
 use understudy_runtime::unit::UnitError;
 
+use crate::fmi::export::ExportError;
 use crate::signal::trace::TraceError;
 
 #[derive(Debug, Error)]
@@ -29,6 +30,8 @@ pub enum Error {
     Integration { case: String, source: OdeError },
     #[error(transparent)]
     Trace(#[from] TraceError),
+    #[error(transparent)]
+    Export(#[from] ExportError),
     #[error("{0}")]
     Failed(String),
 }
@@ -61,6 +64,12 @@ impl Error {
             Error::Trace(TraceError::Parse { .. } | TraceError::Invalid { .. }) => 2,
             Error::Io { .. } | Error::Trace(TraceError::Io { .. }) => 1,
             Error::Integration { .. } | Error::Failed(_) => 1,
+            Error::Export(
+                ExportError::Model(_)
+                | ExportError::UnsupportedVersion(_)
+                | ExportError::Platform(_),
+            ) => 2,
+            Error::Export(_) => 1,
         }
     }
 }

@@ -12,10 +12,10 @@ pub mod error;
 pub mod fit;
 pub mod fmi;
 pub mod reduce;
+pub mod residual;
 pub mod scenario;
 pub mod signal;
 pub mod simulate;
-pub mod residual;
 pub mod study;
 pub mod validate;
 

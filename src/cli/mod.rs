@@ -1,6 +1,7 @@
 //! Subcommands, one file each; each is thin and calls one library function.
 
 mod demo;
+mod export;
 mod init;
 mod simulate;
 
@@ -43,6 +44,20 @@ pub enum Command {
         #[arg(long)]
         force: bool,
     },
+    /// Package a model as an FMI Co-Simulation FMU. MODEL is a model file (JSON,
+    /// understudy-model/1) or a study file (TOML), whose detailed unit is exported.
+    Export {
+        model: PathBuf,
+        /// The FMU to write.
+        #[arg(long)]
+        out: PathBuf,
+        /// FMI version: 2 (3 is not available yet).
+        #[arg(long, default_value = "2")]
+        fmi: u8,
+        /// Target platforms (comma-separated); only linux64 is available.
+        #[arg(long, default_value = "linux64")]
+        platforms: String,
+    },
     /// Generate fault-response traces from a detailed model.
     Simulate {
         /// Study file (default: the embedded demo study).
@@ -70,6 +85,12 @@ pub fn run(cli: Cli) -> Result<i32, Error> {
     match cli.command {
         Command::Demo { out, quiet, json } => demo::run(&out, quiet, json),
         Command::Init { file, force } => init::run(&file, force),
+        Command::Export {
+            model,
+            out,
+            fmi,
+            platforms,
+        } => export::run(&model, &out, fmi, &platforms),
         Command::Simulate {
             study,
             unit,

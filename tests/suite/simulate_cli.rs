@@ -219,3 +219,24 @@ fn init_writes_a_study_that_loads_and_refuses_to_overwrite() {
     assert_eq!(code, 2);
     assert!(err.contains("--force"), "{err}");
 }
+
+#[test]
+fn export_cli_writes_an_fmu_of_the_detailed_unit() {
+    let dir = tempfile::tempdir().unwrap();
+    let study = small_study(dir.path(), 1, 1);
+    let s = study.to_str().unwrap();
+    let (code, _, err) = run_cli(dir.path(), &["export", s, "--out", "unit.fmu"]);
+    assert_eq!(code, 0, "{err}");
+    let bytes = std::fs::read(dir.path().join("unit.fmu")).unwrap();
+    assert_eq!(&bytes[..2], b"PK", "an FMU is a zip archive");
+    // FMI 3.0 is refused as bad usage and leaves nothing behind
+    let (code, _, err) = run_cli(dir.path(), &["export", s, "--out", "v3.fmu", "--fmi", "3"]);
+    assert_eq!(code, 2, "{err}");
+    assert!(!dir.path().join("v3.fmu").exists());
+    let (code, _, err) = run_cli(
+        dir.path(),
+        &["export", s, "--out", "w.fmu", "--platforms", "win64"],
+    );
+    assert_eq!(code, 2, "{err}");
+    assert!(err.contains("--platforms"), "{err}");
+}

@@ -1,0 +1,48 @@
+use std::path::Path;
+use understudy::fmi::export::{export_fmu, FmiVersion};
+use understudy::runtime::cosim::{Bases, ModelFile};
+use understudy::study::Study;
+use understudy::Error;
+
+pub fn run(model: &Path, out: &Path, fmi: u8, platforms: &str) -> Result<i32, Error> {
+    let version = match fmi {
+        2 => FmiVersion::V2,
+        3 => FmiVersion::V3,
+        other => return Err(Error::bad_input("--fmi", other.to_string(), "2 or 3")),
+    };
+    for p in platforms.split(',').map(str::trim) {
+        if p != "linux64" {
+            return Err(Error::bad_input(
+                "--platforms",
+                p,
+                "linux64 (other platforms are not available yet)",
+            ));
+        }
+    }
+    let file = if model.extension().is_some_and(|e| e == "toml") {
+        let study = Study::load(model)?;
+        ModelFile::full_converter(
+            &study.name,
+            study.unit.params.clone(),
+            Bases {
+                s_base_mva: study.unit.rating_mva,
+                v_base_kv: study.unit.voltage_kv,
+            },
+        )
+    } else {
+        let bytes = std::fs::read(model).map_err(|e| Error::io(model, e))?;
+        ModelFile::from_json(&bytes).map_err(|e| Error::BadFile {
+            path: model.to_path_buf(),
+            message: e.to_string(),
+        })?
+    };
+    let report = export_fmu(&file, out, version)?;
+    eprintln!(
+        "wrote {} ({} bytes, model identifier {}, guid {})",
+        report.path.display(),
+        report.bytes,
+        report.model_identifier,
+        report.guid
+    );
+    Ok(0)
+}
