@@ -10,6 +10,7 @@ pub mod atomic;
 pub mod demo;
 pub mod error;
 pub mod fit;
+pub mod greybox;
 pub mod reduce;
 pub mod scenario;
 pub mod signal;

@@ -4,5 +4,6 @@
 
 #![deny(clippy::float_cmp)]
 
+pub mod block;
 pub mod ode;
 pub mod unit;
