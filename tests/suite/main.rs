@@ -4,5 +4,6 @@
 mod common;
 mod comtrade;
 mod full_converter;
+mod blocks;
 mod mbam;
 mod simulate_cli;

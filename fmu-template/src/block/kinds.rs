@@ -27,6 +27,12 @@ const NOW_NOT_INIT: PortUse = PortUse {
     init: false,
     required: true,
 };
+/// read only by the state update; the output at initialisation does not need it
+const STATE_ONLY: PortUse = PortUse {
+    now: false,
+    init: false,
+    required: true,
+};
 const OPTIONAL_LATE: PortUse = PortUse {
     now: false,
     init: false,
@@ -120,7 +126,11 @@ pub const KINDS: &[KindInfo] = &[
         ..info("washout")
     },
     KindInfo {
-        inputs: &[("u", LATE), ("init", OPTIONAL_INIT), ("freeze", OPTIONAL_LATE)],
+        inputs: &[
+            ("u", STATE_ONLY),
+            ("init", OPTIONAL_INIT),
+            ("freeze", OPTIONAL_LATE),
+        ],
         params: &[("k", true)],
         states: 1,
         state_output: true,
