@@ -324,6 +324,13 @@ fn generic_template_fits_the_detailed_full_converter() {
         "fit: {:?} after {} iterations, cost {cost_start} → {}",
         state.termination, state.iteration, state.cost
     );
+    if std::env::var("BLOCKS_DEBUG").is_ok() {
+        for (t, o) in problem.traces().iter().zip(problem.predict(&fitted)) {
+            for k in (0..t.len()).step_by(10) {
+                eprintln!("{} {k} p {:.4} {:.4} q {:.4} {:.4}", t.name, t.p[k], o.p[k], t.q[k], o.q[k]);
+            }
+        }
+    }
     for (n, v) in problem.model().free_parameter_names().iter().zip(&fitted) {
         eprintln!("  {n} = {:.4e}", v.exp());
     }
@@ -381,7 +388,7 @@ fn template_file_errors_name_the_block_port_and_parameter() {
     let err = understudy::greybox::parse_template(&out_of_bounds, false, "t").unwrap_err();
     assert!(err.to_string().contains("parameter `i_max` = 9"), "{err}");
     // a loop of direct-feedthrough blocks
-    let looped = text.replace("terms = [\"+i_p_ff\", \"+p_pi\"]", "terms = [\"+i_p_ff\", \"+p_pi\", \"+i_d_ref\"]");
+    let looped = text.replace("terms = [\"+i_p0\", \"+p_pi\"]", "terms = [\"+i_p0\", \"+p_pi\", \"+i_d_ref\"]");
     let err = understudy::greybox::parse_template(&looped, false, "t").unwrap_err();
     match err {
         understudy::greybox::GreyboxError::Invalid { source: TemplateError::AlgebraicLoop { blocks }, .. } => {

@@ -207,7 +207,7 @@ pub const KINDS: &[KindInfo] = &[
     KindInfo {
         inputs: &[("p", NOW), ("q", NOW), ("reactive_priority", OPTIONAL_NOW)],
         params: &[("i_max", true)],
-        outputs: &["p", "q"],
+        outputs: &["p", "q", "p_limited"],
         options: &["priority"],
         ..info("current-limit")
     },

@@ -86,6 +86,8 @@ pub struct Reduction {
 enum Action {
     /// remove the block; its output(s) become these signals
     Alias(Vec<(String, String)>),
+    /// as `Alias`, with new blocks put in the removed block's place
+    AliasWith(Vec<(String, String)>, Vec<BlockSpec>),
     /// replace the block by these blocks (the first keeps the name)
     Replace(Vec<BlockSpec>),
     /// drop a setting of the block
@@ -319,10 +321,14 @@ pub fn apply_limit(
                         }
                     }
                     ("current-limit", "i_max", false) => (
-                        Action::Alias(vec![
-                            (format!("{name}.p"), input("p")),
-                            (format!("{name}.q"), input("q")),
-                        ]),
+                        Action::AliasWith(
+                            vec![
+                                (format!("{name}.p"), input("p")),
+                                (format!("{name}.q"), input("q")),
+                                (format!("{name}.p_limited"), format!("{name}__never_limited")),
+                            ],
+                            vec![constant(&format!("{name}__never_limited"), 0.0)],
+                        ),
                         format!("current limit `{name}` removed (never binds)"),
                     ),
                     (_, _, _) => {
@@ -348,6 +354,10 @@ pub fn apply_limit(
                 match action {
                     Action::Alias(pairs) => {
                         reduced.blocks.remove(bi);
+                        aliases.extend(pairs);
+                    }
+                    Action::AliasWith(pairs, new_blocks) => {
+                        reduced.blocks.splice(bi..=bi, new_blocks);
                         aliases.extend(pairs);
                     }
                     Action::Replace(new_blocks) => {

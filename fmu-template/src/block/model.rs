@@ -1131,7 +1131,11 @@ impl<'m, S: Scalar> Simulator<'m, S> {
                 } else {
                     (first, second)
                 };
+                // exact comparison: the clamp returns the bound itself when it acts
+                #[allow(clippy::float_cmp)]
+                let p_limited = pl.value() != sig[*p].value();
                 self.signals[out + 1] = ql;
+                self.signals[out + 2] = S::cst(if p_limited { 1.0 } else { 0.0 });
                 pl
             }
             Op::Lag { .. }
