@@ -151,11 +151,10 @@ impl TemplateFit {
         if traces.is_empty() {
             return Err(GreyboxError::NoTraces);
         }
-        let model =
-            BlockModel::compile(template).map_err(|source| GreyboxError::Invalid {
-                origin: template.name.clone(),
-                source,
-            })?;
+        let model = BlockModel::compile(template).map_err(|source| GreyboxError::Invalid {
+            origin: template.name.clone(),
+            source: Box::new(source),
+        })?;
         let mut offsets = Vec::with_capacity(traces.len());
         let mut count = 0;
         for t in &traces {
@@ -283,10 +282,7 @@ impl TemplateFit {
                 r
             })
             .collect();
-        DVector::from_iterator(
-            self.count,
-            parts.into_iter().flatten().map(|d| d.d[0]),
-        )
+        DVector::from_iterator(self.count, parts.into_iter().flatten().map(|d| d.d[0]))
     }
 }
 

@@ -29,7 +29,7 @@ pub enum GreyboxError {
     Invalid {
         origin: String,
         #[source]
-        source: TemplateError,
+        source: Box<TemplateError>,
     },
     #[error("{path}: {source}")]
     Io {
@@ -58,7 +58,7 @@ pub fn parse_template(text: &str, json: bool, origin: &str) -> Result<Template, 
     understudy_runtime::block::BlockModel::compile(&template).map_err(|source| {
         GreyboxError::Invalid {
             origin: origin.into(),
-            source,
+            source: Box::new(source),
         }
     })?;
     Ok(template)
@@ -76,6 +76,10 @@ pub fn read_template(path: &Path) -> Result<Template, GreyboxError> {
 
 /// The built-in generic full-converter template.
 pub fn generic_converter() -> Template {
-    parse_template(GENERIC_CONVERTER_TOML, false, "generic-converter (built in)")
-        .expect("the built-in template is valid (checked by the test suite)")
+    parse_template(
+        GENERIC_CONVERTER_TOML,
+        false,
+        "generic-converter (built in)",
+    )
+    .expect("the built-in template is valid (checked by the test suite)")
 }

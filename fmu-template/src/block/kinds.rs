@@ -147,6 +147,12 @@ pub const KINDS: &[KindInfo] = &[
         ..info("pi")
     },
     KindInfo {
+        inputs: &[("u", NOW_NOT_INIT), ("init", OPTIONAL_INIT)],
+        params: &[("kp", true)],
+        memories: 1,
+        ..info("proportional")
+    },
+    KindInfo {
         inputs: &[("u", NOW)],
         params: &[("min", true), ("max", true)],
         ..info("limiter")

@@ -44,12 +44,11 @@ pub enum LimitError {
         limit: String,
         declared: Vec<LimitKind>,
     },
-    #[error("parameter `{parameter}` {limit}: block `{block}` ({kind}, setting `{setting}`) has no such limit: {reason}")]
+    #[error("parameter `{parameter}` {limit}: block `{block}` (setting `{setting}`) has no such limit: {reason}")]
     Unsupported {
         parameter: String,
         limit: String,
         block: String,
-        kind: String,
         setting: String,
         reason: String,
     },
@@ -64,7 +63,7 @@ pub enum LimitError {
         parameter: String,
         limit: String,
         #[source]
-        source: TemplateError,
+        source: Box<TemplateError>,
     },
 }
 
@@ -197,8 +196,7 @@ pub fn apply_limit(
                 let refuse = |setting: &str, reason: &str| LimitError::Unsupported {
                     parameter: parameter.into(),
                     limit: limit.symbol(),
-                    block: b.name.clone(),
-                    kind: b.kind.clone(),
+                    block: format!("{} ({})", b.name, b.kind),
                     setting: setting.into(),
                     reason: reason.into(),
                 };
@@ -207,7 +205,9 @@ pub fn apply_limit(
                 let name = b.name.as_str();
                 let (action, effect) = match (b.kind.as_str(), setting.as_str(), zero) {
                     ("lag", "t", true) => (
-                        Action::Replace(vec![BlockSpec::new(name, "delay").input("u", &input("u"))]),
+                        Action::Replace(
+                            vec![BlockSpec::new(name, "delay").input("u", &input("u"))],
+                        ),
                         format!("lag `{name}` becomes a one-step delay (filter removed)"),
                     ),
                     ("lag", "t", false) => (
@@ -251,27 +251,22 @@ pub fn apply_limit(
                         }
                         (
                             Action::Replace(vec![i]),
-                            format!("PI `{name}` becomes a pure integrator (proportional path removed)"),
+                            format!(
+                                "PI `{name}` becomes a pure integrator (proportional path removed)"
+                            ),
                         )
                     }
                     ("pi", "ki", true) => {
-                        let offset = format!("{name}__offset");
-                        let prop = format!("{name}__proportional");
-                        let held = match b.inputs.get("init") {
-                            Some(s) => BlockSpec::new(&offset, "hold").input("u", s),
-                            None => constant(&offset, 0.0),
-                        };
+                        let mut prop = BlockSpec::new(name, "proportional")
+                            .input("u", &input("u"))
+                            .param("kp", b.params["kp"].clone());
+                        if let Some(s) = b.inputs.get("init") {
+                            prop = prop.input("init", s);
+                        }
                         (
-                            Action::Replace(vec![
-                                BlockSpec::new(name, "sum")
-                                    .terms(&[&format!("+{prop}"), &format!("+{offset}")]),
-                                BlockSpec::new(&prop, "gain")
-                                    .input("u", &input("u"))
-                                    .param("k", b.params["kp"].clone()),
-                                held,
-                            ]),
+                            Action::Replace(vec![prop]),
                             format!(
-                                "PI `{name}` becomes proportional plus its initial output (state removed)"
+                                "PI `{name}` becomes proportional around its initial output (integral state removed)"
                             ),
                         )
                     }
@@ -305,9 +300,10 @@ pub fn apply_limit(
                         }
                     }
                     ("limiter", _, false) => {
-                        let both = b.params.iter().all(|(_, r)| {
-                            r.parameter().is_some_and(|(n, _)| n == parameter)
-                        });
+                        let both = b
+                            .params
+                            .iter()
+                            .all(|(_, r)| r.parameter().is_some_and(|(n, _)| n == parameter));
                         if both {
                             (
                                 Action::Alias(vec![(name.into(), input("u"))]),
@@ -325,7 +321,10 @@ pub fn apply_limit(
                             vec![
                                 (format!("{name}.p"), input("p")),
                                 (format!("{name}.q"), input("q")),
-                                (format!("{name}.p_limited"), format!("{name}__never_limited")),
+                                (
+                                    format!("{name}.p_limited"),
+                                    format!("{name}__never_limited"),
+                                ),
                             ],
                             vec![constant(&format!("{name}__never_limited"), 0.0)],
                         ),
@@ -407,7 +406,7 @@ pub fn apply_limit(
     BlockModel::compile(&reduced).map_err(|source| LimitError::Invalid {
         parameter: parameter.into(),
         limit: limit.symbol(),
-        source,
+        source: Box::new(source),
     })?;
     let states_after = reduced.state_count();
     let sentence = format!(

@@ -13,7 +13,7 @@
 //! Every step: (A) outputs of blocks whose output is their state, (B) the other blocks in
 //! topological order, (C) every state update from the signals of that step.
 
-use super::kinds::{lookup, known_kinds, KindInfo};
+use super::kinds::{known_kinds, lookup, KindInfo};
 use super::scalar::Scalar;
 use super::template::{ParamRef, Template};
 use std::collections::HashMap;
@@ -128,29 +128,109 @@ pub enum InitialQuantity {
 enum Op {
     Constant(Num),
     Setpoint(InitialQuantity),
-    Gain { u: usize, k: Num },
+    Gain {
+        u: usize,
+        k: Num,
+    },
     Sum(Vec<(usize, f64)>),
     /// (signal, divide)
     Product(Vec<(usize, bool)>),
-    Lag { u: usize, t: Num },
-    LeadLag { u: usize, t_lead: Num, t_lag: Num },
-    Washout { u: usize, t: Num },
-    Integrator { u: usize, k: Num, init: Option<usize>, freeze: Option<usize> },
-    Pi { u: usize, kp: Num, ki: Num, init: Option<usize>, freeze: Option<usize> },
-    Limiter { u: usize, min: Num, max: Num },
-    VariableLimiter { u: usize, min: usize, max: usize },
-    RateLimiter { u: usize, rise: Option<Num>, fall: Option<Num> },
-    DeadBand { u: usize, width: Num },
-    Detector { u: usize, threshold: Num, hysteresis: Num, below: bool },
-    Select { condition: usize, when_true: usize, when_false: usize },
-    Pll { re: usize, im: usize, freeze: Option<usize>, kp: Num, ki: Num },
-    ToDq { re: usize, im: usize, angle: usize },
-    FromDq { d: usize, q: usize, angle: usize },
-    Magnitude { re: usize, im: usize },
-    Power { v_re: usize, v_im: usize, i_re: usize, i_im: usize },
-    CurrentLimit { p: usize, q: usize, i_max: Num, reactive_first: bool, flag: Option<usize> },
-    Delay { u: usize },
-    Hold { u: usize },
+    Lag {
+        u: usize,
+        t: Num,
+    },
+    LeadLag {
+        u: usize,
+        t_lead: Num,
+        t_lag: Num,
+    },
+    Washout {
+        u: usize,
+        t: Num,
+    },
+    Integrator {
+        u: usize,
+        k: Num,
+        init: Option<usize>,
+        freeze: Option<usize>,
+    },
+    Pi {
+        u: usize,
+        kp: Num,
+        ki: Num,
+        init: Option<usize>,
+        freeze: Option<usize>,
+    },
+    Limiter {
+        u: usize,
+        min: Num,
+        max: Num,
+    },
+    VariableLimiter {
+        u: usize,
+        min: usize,
+        max: usize,
+    },
+    RateLimiter {
+        u: usize,
+        rise: Option<Num>,
+        fall: Option<Num>,
+    },
+    DeadBand {
+        u: usize,
+        width: Num,
+    },
+    Detector {
+        u: usize,
+        threshold: Num,
+        hysteresis: Num,
+        below: bool,
+    },
+    Select {
+        condition: usize,
+        when_true: usize,
+        when_false: usize,
+    },
+    Pll {
+        re: usize,
+        im: usize,
+        freeze: Option<usize>,
+        kp: Num,
+        ki: Num,
+    },
+    ToDq {
+        re: usize,
+        im: usize,
+        angle: usize,
+    },
+    FromDq {
+        d: usize,
+        q: usize,
+        angle: usize,
+    },
+    Magnitude {
+        re: usize,
+        im: usize,
+    },
+    Power {
+        v_re: usize,
+        v_im: usize,
+        i_re: usize,
+        i_im: usize,
+    },
+    CurrentLimit {
+        p: usize,
+        q: usize,
+        i_max: Num,
+        reactive_first: bool,
+        flag: Option<usize>,
+    },
+    Delay {
+        u: usize,
+    },
+    Hold {
+        u: usize,
+    },
 }
 
 #[derive(Debug, Clone)]
@@ -195,7 +275,10 @@ fn check_name_unique(seen: &mut HashMap<String, ()>, name: &str) -> Result<(), T
 
 /// Topological order of `nodes` under `deps[node]` (indices of nodes it needs first); on a
 /// cycle, the blocks of one cycle.
-fn topological(nodes: &[usize], deps: &HashMap<usize, Vec<usize>>) -> Result<Vec<usize>, Vec<usize>> {
+fn topological(
+    nodes: &[usize],
+    deps: &HashMap<usize, Vec<usize>>,
+) -> Result<Vec<usize>, Vec<usize>> {
     // depth-first with colours: 0 new, 1 on the stack, 2 done
     let mut colour: HashMap<usize, u8> = nodes.iter().map(|&n| (n, 0)).collect();
     let mut order = Vec::with_capacity(nodes.len());
@@ -434,11 +517,10 @@ impl BlockModel {
                         Some(c @ ('+' | '-' | '/' | '*')) => (Some(c), &t[1..]),
                         _ => (None, t.as_str()),
                     };
-                    let ok = match (b.kind.as_str(), mark) {
-                        ("sum", Some('+' | '-') | None) => true,
-                        ("product", Some('*' | '/') | None) => true,
-                        _ => false,
-                    };
+                    let ok = matches!(
+                        (b.kind.as_str(), mark),
+                        ("sum", Some('+' | '-') | None) | ("product", Some('*' | '/') | None)
+                    );
                     if !ok {
                         return Err(TemplateError::BadTerm {
                             block: b.name.clone(),
@@ -519,6 +601,14 @@ impl BlockModel {
                     ki: req("ki")?,
                     init: opt_port("init"),
                     freeze: opt_port("freeze"),
+                },
+                // a PI without integral action: its offset is held from initialisation
+                "proportional" => Op::Pi {
+                    u: port("u"),
+                    kp: req("kp")?,
+                    ki: Num::Const(0.0),
+                    init: opt_port("init"),
+                    freeze: None,
                 },
                 "limiter" => Op::Limiter {
                     u: port("u"),
@@ -650,9 +740,14 @@ impl BlockModel {
         let outputs = {
             let o = &template.outputs;
             let mut r = [0; 4];
-            for (k, (output, signal)) in [("i_re", &o.i_re), ("i_im", &o.i_im), ("p", &o.p), ("q", &o.q)]
-                .into_iter()
-                .enumerate()
+            for (k, (output, signal)) in [
+                ("i_re", &o.i_re),
+                ("i_im", &o.i_im),
+                ("p", &o.p),
+                ("q", &o.q),
+            ]
+            .into_iter()
+            .enumerate()
             {
                 r[k] = *signal_index.get(signal.as_str()).ok_or_else(|| {
                     TemplateError::UnknownOutput {
@@ -665,17 +760,23 @@ impl BlockModel {
         };
 
         let names = |ids: Vec<usize>| ids.into_iter().map(|i| blocks[i].name.clone()).collect();
-        let feedthrough: Vec<usize> = (0..blocks.len()).filter(|&i| !blocks[i].state_output).collect();
+        let feedthrough: Vec<usize> = (0..blocks.len())
+            .filter(|&i| !blocks[i].state_output)
+            .collect();
         // state-output blocks are sources of the running graph
         for (node, deps) in run_deps.iter_mut() {
             let _ = node;
             deps.retain(|d| !blocks[*d].state_output);
         }
-        let run_order = topological(&feedthrough, &run_deps)
-            .map_err(|cycle| TemplateError::AlgebraicLoop { blocks: names(cycle) })?;
+        let run_order =
+            topological(&feedthrough, &run_deps).map_err(|cycle| TemplateError::AlgebraicLoop {
+                blocks: names(cycle),
+            })?;
         let all: Vec<usize> = (0..blocks.len()).collect();
-        let init_order = topological(&all, &init_deps)
-            .map_err(|cycle| TemplateError::InitialisationLoop { blocks: names(cycle) })?;
+        let init_order =
+            topological(&all, &init_deps).map_err(|cycle| TemplateError::InitialisationLoop {
+                blocks: names(cycle),
+            })?;
 
         let values = template.parameters.iter().map(|p| p.value).collect();
         let free = template
@@ -773,7 +874,14 @@ impl BlockModel {
             v_im: input.v_im[k],
             f_grid: input.f_grid.map_or(1.0, |f| f[k]),
         };
-        let mut sim = Simulator::new(self, free, sample(0), &input.initial, input.step_s, config.substeps);
+        let mut sim = Simulator::new(
+            self,
+            free,
+            sample(0),
+            &input.initial,
+            input.step_s,
+            config.substeps,
+        );
         for k in 0..n {
             let y = sim.step(sample(k));
             out.i_re.push(y[0]);
@@ -1001,34 +1109,49 @@ impl<'m, S: Scalar> Simulator<'m, S> {
                 })
             }
             Op::Gain { u, k } => num(&self.params, *k) * sig[*u],
-            Op::Sum(terms) => terms
-                .iter()
-                .fold(S::cst(0.0), |a, &(s, sign)| if sign < 0.0 { a - sig[s] } else { a + sig[s] }),
-            Op::Product(factors) => factors.iter().fold(S::cst(1.0), |a, &(s, divide)| {
-                if divide {
-                    a / sig[s]
+            Op::Sum(terms) => terms.iter().fold(S::cst(0.0), |a, &(s, sign)| {
+                if sign < 0.0 {
+                    a - sig[s]
                 } else {
-                    a * sig[s]
+                    a + sig[s]
                 }
             }),
+            Op::Product(factors) => {
+                factors.iter().fold(
+                    S::cst(1.0),
+                    |a, &(s, divide)| {
+                        if divide {
+                            a / sig[s]
+                        } else {
+                            a * sig[s]
+                        }
+                    },
+                )
+            }
             Op::LeadLag { u, t_lead, t_lag } => {
                 let ratio = num(&self.params, *t_lead) / num(&self.params, *t_lag);
                 ratio * sig[*u] + (S::cst(1.0) - ratio) * self.state[b.state]
             }
             Op::Washout { u, .. } => sig[*u] - self.state[b.state],
             Op::Pi { u, kp, .. } => num(&self.params, *kp) * sig[*u] + self.state[b.state],
-            Op::Limiter { u, min, max } => clamp(sig[*u], num(&self.params, *min), num(&self.params, *max)),
+            Op::Limiter { u, min, max } => {
+                clamp(sig[*u], num(&self.params, *min), num(&self.params, *max))
+            }
             Op::VariableLimiter { u, min, max } => clamp(sig[*u], sig[*min], sig[*max]),
             Op::RateLimiter { u, rise, fall } => {
                 let prev = self.state[b.state];
                 let step = sig[*u] - prev;
                 let h = S::cst(self.h);
                 let step = match rise {
-                    Some(r) if step.value() > (num(&self.params, *r) * h).value() => num(&self.params, *r) * h,
+                    Some(r) if step.value() > (num(&self.params, *r) * h).value() => {
+                        num(&self.params, *r) * h
+                    }
                     _ => step,
                 };
                 let step = match fall {
-                    Some(f) if step.value() < -(num(&self.params, *f) * h).value() => -(num(&self.params, *f) * h),
+                    Some(f) if step.value() < -(num(&self.params, *f) * h).value() => {
+                        -(num(&self.params, *f) * h)
+                    }
                     _ => step,
                 };
                 prev + step
@@ -1187,15 +1310,11 @@ impl<'m, S: Scalar> Simulator<'m, S> {
                     let a = lag_coefficient(h, num(params, *t));
                     ns[b.state] = x + a * (sig[*u] - x);
                 }
-                Op::Integrator { u, k, freeze, .. } => {
-                    if !frozen(freeze) {
-                        ns[b.state] = x.expect("state") + num(params, *k) * sig[*u] * S::cst(h);
-                    }
+                Op::Integrator { u, k, freeze, .. } if !frozen(freeze) => {
+                    ns[b.state] = x.expect("state") + num(params, *k) * sig[*u] * S::cst(h);
                 }
-                Op::Pi { u, ki, freeze, .. } => {
-                    if !frozen(freeze) {
-                        ns[b.state] = x.expect("state") + num(params, *ki) * sig[*u] * S::cst(h);
-                    }
+                Op::Pi { u, ki, freeze, .. } if !frozen(freeze) => {
+                    ns[b.state] = x.expect("state") + num(params, *ki) * sig[*u] * S::cst(h);
                 }
                 Op::Pll {
                     re,

@@ -229,11 +229,7 @@ mod tests {
                 |a| (a * a + 1.0).sqrt() / (a + 3.0),
                 x,
             );
-            check(
-                |a| a.atan2(Dual::cst(0.4) - a),
-                |a| a.atan2(0.4 - a),
-                x,
-            );
+            check(|a| a.atan2(Dual::cst(0.4) - a), |a| a.atan2(0.4 - a), x);
             check(|a| -a.scale(2.5) - a, |a| -2.5 * a - a, x);
         }
     }
@@ -241,7 +237,7 @@ mod tests {
     #[test]
     fn sqrt_of_a_constant_zero_has_zero_derivative() {
         let z = Dual::<2>::cst(0.0).sqrt();
-        assert_eq!(z.d, [0.0, 0.0]);
+        assert!(z.d.iter().all(|d| d.abs() == 0.0));
         // exp of a very negative value times a huge derivative stays finite
         let t = Dual::<1>::seeded(1e-12, 0, 1e-12);
         let a = -(-(Dual::cst(1e-3) / t)).exp_m1();
