@@ -101,6 +101,12 @@ pub enum TemplateError {
     AlgebraicLoop { blocks: Vec<String> },
     #[error("initialisation loop through blocks {blocks:?}: give a PI or integrator on the loop an `init` signal that does not depend on the loop")]
     InitialisationLoop { blocks: Vec<String> },
+    #[error("setting `{setting}` = {value}: expected {expected}")]
+    BadSetting {
+        setting: &'static str,
+        value: String,
+        expected: &'static str,
+    },
     #[error("`f_nom_hz` = {0}: expected a nominal frequency > 0 Hz")]
     BadFrequency(f64),
 }
@@ -896,13 +902,32 @@ impl BlockModel {
 /// Settings of an evaluation.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct EvalConfig {
-    /// internal steps per input sample (h = sample step / substeps); the input is held
-    pub substeps: usize,
+    substeps: usize,
 }
 
 impl Default for EvalConfig {
     fn default() -> Self {
         Self { substeps: 1 }
+    }
+}
+
+impl EvalConfig {
+    /// Internal steps per input sample (h = sample step / substeps; the input is held over
+    /// them). Must be ≥ 1; the default 1 runs at the sample step.
+    pub fn with_substeps(mut self, substeps: usize) -> Result<Self, TemplateError> {
+        if substeps == 0 {
+            return Err(TemplateError::BadSetting {
+                setting: "substeps",
+                value: "0".into(),
+                expected: "at least 1 internal step per sample",
+            });
+        }
+        self.substeps = substeps;
+        Ok(self)
+    }
+
+    pub fn substeps(&self) -> usize {
+        self.substeps
     }
 }
 
