@@ -953,7 +953,7 @@ impl InitialOutputs {
     /// From the first voltage and power samples (i = conj(S/v)).
     pub fn from_power(v_re: f64, v_im: f64, p: f64, q: f64) -> Self {
         let u2 = v_re * v_re + v_im * v_im;
-        // i = conj(S / v) = (p − jq)·v / |v|²... written out for S = v·conj(i)
+        // S = v·conj(i) ⇒ i = conj(S)/conj(v) = (p − jq)(v_re + j·v_im)/|v|²
         let (i_re, i_im) = if u2 > 0.0 {
             ((p * v_re + q * v_im) / u2, (p * v_im - q * v_re) / u2)
         } else {
