@@ -11,6 +11,7 @@ pub mod demo;
 pub mod error;
 pub mod fit;
 pub mod fmi;
+pub mod greybox;
 pub mod reduce;
 pub mod residual;
 pub mod scenario;

@@ -4,6 +4,7 @@
 
 #![deny(clippy::float_cmp)]
 
+pub mod block;
 pub mod cosim;
 pub mod fmi2;
 pub mod ode;

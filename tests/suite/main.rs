@@ -1,6 +1,7 @@
 //! The one integration-test binary: every module below drives the library or the real CLI.
 //! External checks name their published source beside the numbers.
 
+mod blocks;
 mod common;
 mod comtrade;
 mod fmi;
