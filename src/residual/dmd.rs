@@ -1095,6 +1095,7 @@ mod tests {
     }
 
     #[test]
+    #[allow(clippy::float_cmp)] // delay embedding copies samples: exact equality is the point
     fn delay_embedding_layout() {
         let series = DMatrix::from_fn(2, 6, |c, k| (10 * c + k) as f64);
         let inputs = DMatrix::from_fn(1, 6, |_, k| 100.0 + k as f64);
