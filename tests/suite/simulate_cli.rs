@@ -240,3 +240,15 @@ fn export_cli_writes_an_fmu_of_the_detailed_unit() {
     assert_eq!(code, 2, "{err}");
     assert!(err.contains("--platforms"), "{err}");
 }
+
+#[test]
+fn demo_runs_on_the_embedded_study() {
+    let dir = tempfile::tempdir().unwrap();
+    let (code, out, err) = run_cli(dir.path(), &["demo", "--out", "d", "--json"]);
+    assert_eq!(code, 0, "{err}");
+    let report: serde_json::Value = serde_json::from_str(&out).expect("--json prints JSON");
+    assert_eq!(report["cases"], 24);
+    assert!(report["failures"].as_array().unwrap().is_empty());
+    assert_eq!(read_folder(&dir.path().join("d/traces")).unwrap().len(), 24);
+    assert!(dir.path().join("d/tarn-moss-demo-detailed.fmu").exists());
+}
