@@ -5,6 +5,7 @@ use crate::simulate::SimulationSettings;
 use crate::Error;
 use serde::{Deserialize, Serialize};
 use std::path::Path;
+use understudy_runtime::cosim::{Bases, ModelFile};
 use understudy_runtime::unit::full_converter::FullConverterParams;
 
 /// Kinds of built-in detailed models.
@@ -100,6 +101,18 @@ impl Study {
     pub fn load(path: &Path) -> Result<Self, Error> {
         let text = std::fs::read_to_string(path).map_err(|e| Error::io(path, e))?;
         Self::from_toml(&text, path)
+    }
+
+    /// The study's detailed unit as a model file (what `export` packages into an FMU).
+    pub fn detailed_model_file(&self) -> ModelFile {
+        ModelFile::full_converter(
+            &self.name,
+            self.unit.params.clone(),
+            Bases {
+                s_base_mva: self.unit.rating_mva,
+                v_base_kv: self.unit.voltage_kv,
+            },
+        )
     }
 
     pub fn validate(&self) -> Result<(), Error> {

@@ -1,7 +1,6 @@
 use std::collections::BTreeMap;
 use std::path::Path;
 use understudy::fmi::export::{export_fmu, FmiVersion};
-use understudy::runtime::cosim::{Bases, ModelFile};
 use understudy::{demo, simulate, Error};
 
 pub fn run(out: &Path, quiet: bool, json: bool) -> Result<i32, Error> {
@@ -22,15 +21,7 @@ pub fn run(out: &Path, quiet: bool, json: bool) -> Result<i32, Error> {
     bar.finish_and_clear();
     // the detailed unit as an FMU (the stand-in's FMU follows once the surrogate stages exist)
     let fmu = out.join(format!("{}-detailed.fmu", study.name));
-    let model = ModelFile::full_converter(
-        &study.name,
-        study.unit.params.clone(),
-        Bases {
-            s_base_mva: study.unit.rating_mva,
-            v_base_kv: study.unit.voltage_kv,
-        },
-    );
-    let exported = export_fmu(&model, &fmu, FmiVersion::V2)?;
+    let exported = export_fmu(&study.detailed_model_file(), &fmu, FmiVersion::V2)?;
     let mut by_kind: BTreeMap<&str, usize> = BTreeMap::new();
     for c in &summary.cases {
         *by_kind.entry(c.disturbance.as_str()).or_default() += 1;

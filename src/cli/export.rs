@@ -1,6 +1,6 @@
 use std::path::Path;
 use understudy::fmi::export::{export_fmu, FmiVersion};
-use understudy::runtime::cosim::{Bases, ModelFile};
+use understudy::runtime::cosim::ModelFile;
 use understudy::study::Study;
 use understudy::Error;
 
@@ -20,15 +20,7 @@ pub fn run(model: &Path, out: &Path, fmi: u8, platforms: &str) -> Result<i32, Er
         }
     }
     let file = if model.extension().is_some_and(|e| e == "toml") {
-        let study = Study::load(model)?;
-        ModelFile::full_converter(
-            &study.name,
-            study.unit.params.clone(),
-            Bases {
-                s_base_mva: study.unit.rating_mva,
-                v_base_kv: study.unit.voltage_kv,
-            },
-        )
+        Study::load(model)?.detailed_model_file()
     } else {
         let bytes = std::fs::read(model).map_err(|e| Error::io(model, e))?;
         ModelFile::from_json(&bytes).map_err(|e| Error::BadFile {
