@@ -17,6 +17,7 @@ pub mod residual;
 pub mod scenario;
 pub mod signal;
 pub mod simulate;
+pub mod split;
 pub mod study;
 pub mod validate;
 
