@@ -3,6 +3,7 @@
 mod demo;
 mod export;
 mod init;
+mod reduce;
 mod simulate;
 
 use clap::{Parser, Subcommand};
@@ -58,6 +59,41 @@ pub enum Command {
         #[arg(long, default_value = "linux64")]
         platforms: String,
     },
+    /// Fit a grey-box template to traces and reduce it (manifold boundary approximation);
+    /// writes the reduced model (JSON, understudy-reduced/1) and a plain-text log beside it.
+    Reduce {
+        /// Folder of traces (*.csv).
+        #[arg(long)]
+        traces: PathBuf,
+        /// Template file (TOML or JSON; default: the built-in generic converter).
+        #[arg(long)]
+        template: Option<PathBuf>,
+        /// The reduced-model file to write.
+        #[arg(long)]
+        out: PathBuf,
+        /// Fraction of the traces held out for the tolerance check.
+        #[arg(long, default_value = "0.25")]
+        held_out: f64,
+        /// Held-out NRMSE of the reduced model may reach this factor × the full template's
+        /// (+ the margin); default 1.5.
+        #[arg(long)]
+        tolerance: Option<f64>,
+        /// Absolute slack of the tolerance (fraction of the data range); default 0.005.
+        #[arg(long)]
+        tolerance_margin: Option<f64>,
+        /// Stop at this many free parameters.
+        #[arg(long)]
+        min_parameters: Option<usize>,
+        /// At most this many reductions.
+        #[arg(long)]
+        max_steps: Option<usize>,
+        /// Keep every k-th sample while reducing (default 2).
+        #[arg(long)]
+        decimation: Option<usize>,
+        /// No progress lines, only the summary.
+        #[arg(long)]
+        quiet: bool,
+    },
     /// Generate fault-response traces from a detailed model.
     Simulate {
         /// Study file (default: the embedded demo study).
@@ -91,6 +127,29 @@ pub fn run(cli: Cli) -> Result<i32, Error> {
             fmi,
             platforms,
         } => export::run(&model, &out, fmi, &platforms),
+        Command::Reduce {
+            traces,
+            template,
+            out,
+            held_out,
+            tolerance,
+            tolerance_margin,
+            min_parameters,
+            max_steps,
+            decimation,
+            quiet,
+        } => reduce::run(reduce::Request {
+            traces,
+            template,
+            out,
+            held_out,
+            tolerance,
+            tolerance_margin,
+            min_parameters,
+            max_steps,
+            decimation,
+            quiet,
+        }),
         Command::Simulate {
             study,
             unit,

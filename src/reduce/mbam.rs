@@ -70,27 +70,27 @@ pub struct MbamRecord {
     pub refit: FitResult,
 }
 
-/// One MBAM step from a fitted point (Transtrum & Qiu 2014):
-/// 1. Fisher information at `fitted_log_params`, least-sensitive eigenvector e_min;
-/// 2. geodesics along ±e_min (in parallel) until their stop conditions;
-/// 3. among those that reached a boundary, nearest first (shortest arc length: the limit that
-///    changes the predictions least), read the limit and ask `reducer` for the reduced model;
-///    a direction the reducer refuses is skipped;
-/// 4. refit the reduced model from its suggested start.
-pub fn mbam_step<M: LeastSquaresModel + ?Sized>(
+/// The boundary part of one MBAM step, before the refit: where the geodesics went, which one
+/// was used, the limit read off it and the reduced model (its refit start included).
+#[derive(Debug)]
+pub struct MbamBoundary {
+    pub fisher: FisherInformation,
+    pub geodesics: [GeodesicResult; 2],
+    pub chosen: usize,
+    pub reading: BoundaryReading,
+    pub reduced: ReducedModel,
+    /// limits the reducer refused before the one taken (sentence, reason)
+    pub refused: Vec<(String, String)>,
+}
+
+/// Steps 1–3 of [`mbam_step`] (no refit), for callers that refit in their own way.
+pub fn mbam_boundary<M: LeastSquaresModel + ?Sized>(
     model: &M,
     fitted_log_params: &[f64],
     reducer: &dyn Reducer,
     config: &MbamConfig,
-) -> Result<(MbamRecord, ReducedModel), ReduceError> {
+) -> Result<MbamBoundary, ReduceError> {
     let names = model.parameter_names();
-    let cost_before = 0.5
-        * evaluate_residuals(model, fitted_log_params)
-            .map_err(|source| ReduceError::Model {
-                stage: "cost at the fitted point",
-                source,
-            })?
-            .norm_squared();
     let fisher = FisherInformation::at(model, fitted_log_params)?;
     let (lambda_min, direction) = fisher.least_sensitive();
     if !(lambda_min.is_finite() && fisher.eigenvalues.iter().all(|e| e.is_finite())) {
@@ -119,39 +119,80 @@ pub fn mbam_step<M: LeastSquaresModel + ?Sized>(
     }
     candidates.sort_by(|&a, &b| geodesics[a].arc_length.total_cmp(&geodesics[b].arc_length));
     let mut first_refusal = None;
+    let mut refused = Vec::new();
     for chosen in candidates {
         let reading = read_boundary(&names, &geodesics[chosen], &config.boundary)?;
-        let reduced = match reducer.reduce(&reading) {
-            Ok(reduced) => reduced,
+        match reducer.reduce(&reading) {
+            Ok(reduced) => {
+                return Ok(MbamBoundary {
+                    fisher,
+                    geodesics,
+                    chosen,
+                    reading,
+                    reduced,
+                    refused,
+                })
+            }
             Err(source) => {
+                refused.push((reading.sentence.clone(), source.to_string()));
                 first_refusal.get_or_insert(ReduceError::Reduction {
                     limit: reading.sentence.clone(),
                     source,
                 });
-                continue;
             }
-        };
-        let refit = fit(
-            reduced.model.as_ref(),
-            &reduced.start_log_params,
-            &config.refit,
-        )
-        .map_err(ReduceError::Refit)?;
-        let record = MbamRecord {
-            fisher,
-            geodesics,
-            chosen,
-            reduction: reduced.description.clone(),
-            names_before: names,
-            log_params_before: fitted_log_params.to_vec(),
-            cost_before,
-            names_after: refit.parameter_names.clone(),
-            log_params_after: refit.log_params.clone(),
-            cost_after: refit.cost,
-            refit,
-            reading,
-        };
-        return Ok((record, reduced));
+        }
     }
     Err(first_refusal.expect("every candidate was refused"))
+}
+
+/// One MBAM step from a fitted point (Transtrum & Qiu 2014):
+/// 1. Fisher information at `fitted_log_params`, least-sensitive eigenvector e_min;
+/// 2. geodesics along ±e_min (in parallel) until their stop conditions;
+/// 3. among those that reached a boundary, nearest first (shortest arc length: the limit that
+///    changes the predictions least), read the limit and ask `reducer` for the reduced model;
+///    a direction the reducer refuses is skipped;
+/// 4. refit the reduced model from its suggested start.
+pub fn mbam_step<M: LeastSquaresModel + ?Sized>(
+    model: &M,
+    fitted_log_params: &[f64],
+    reducer: &dyn Reducer,
+    config: &MbamConfig,
+) -> Result<(MbamRecord, ReducedModel), ReduceError> {
+    let names = model.parameter_names();
+    let cost_before = 0.5
+        * evaluate_residuals(model, fitted_log_params)
+            .map_err(|source| ReduceError::Model {
+                stage: "cost at the fitted point",
+                source,
+            })?
+            .norm_squared();
+    let MbamBoundary {
+        fisher,
+        geodesics,
+        chosen,
+        reading,
+        reduced,
+        ..
+    } = mbam_boundary(model, fitted_log_params, reducer, config)?;
+    let refit = fit(
+        reduced.model.as_ref(),
+        &reduced.start_log_params,
+        &config.refit,
+    )
+    .map_err(ReduceError::Refit)?;
+    let record = MbamRecord {
+        fisher,
+        geodesics,
+        chosen,
+        reduction: reduced.description.clone(),
+        names_before: names,
+        log_params_before: fitted_log_params.to_vec(),
+        cost_before,
+        names_after: refit.parameter_names.clone(),
+        log_params_after: refit.log_params.clone(),
+        cost_after: refit.cost,
+        refit,
+        reading,
+    };
+    Ok((record, reduced))
 }

@@ -14,6 +14,7 @@ mod boundary;
 mod fisher;
 mod geodesic;
 mod mbam;
+pub mod reduction;
 
 pub use boundary::{read_boundary, BoundaryConfig, BoundaryLimit, BoundaryReading, LimitDirection};
 pub use fisher::FisherInformation;
@@ -21,7 +22,13 @@ pub use geodesic::{
     geodesic_acceleration, Geodesic, GeodesicConfig, GeodesicPoint, GeodesicResult, GeodesicState,
     GeodesicStop, SpeedNormalisation,
 };
-pub use mbam::{mbam_step, MbamConfig, MbamRecord, ReducedModel, Reducer};
+pub use mbam::{
+    mbam_boundary, mbam_step, MbamBoundary, MbamConfig, MbamRecord, ReducedModel, Reducer,
+};
+pub use reduction::{
+    read_reduced, reduce_template, split_traces, write_reduced, ReducedFile, ReductionConfig,
+    ReductionError, ReductionEvent, ReductionOutcome, ReductionStep, StopReason, REDUCED_FORMAT,
+};
 
 use crate::fit::{ConfigError, FitError, ModelError};
 
