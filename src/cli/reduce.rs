@@ -135,7 +135,7 @@ pub fn run(req: Request) -> Result<i32, Error> {
         },
         e => Error::Failed(e.to_string()),
     })?;
-    let file = ReducedFile::new(outcome, split, config);
+    let file = ReducedFile::new(outcome, split, &config);
     let log = write_reduced(&req.out, &file).map_err(|e| Error::Failed(e.to_string()))?;
     let free =
         |t: &understudy::runtime::block::Template| t.parameters.iter().filter(|p| !p.fixed).count();

@@ -59,6 +59,7 @@ pub struct ReductionConfig {
     held_out_margin: f64,
     min_parameters: usize,
     max_steps: usize,
+    attempts_per_step: usize,
     decimation: usize,
     full_fit_iterations: usize,
     refit_iterations: usize,
@@ -69,8 +70,8 @@ pub struct ReductionConfig {
 
 impl Default for ReductionConfig {
     /// Defaults (our choices, measured on the demo plant, not from the literature):
-    /// - a reduction is kept while the held-out NRMSE of P and of Q each stay within
-    ///   1.5 × the full template's + 0.005 (half a percent of the data range): a reduced model
+    /// - a reduction is kept while the held-out (and training) NRMSE of P and of Q each stay
+    ///   within 1.5 × the full template's + 0.005 (half a percent of the data range): a reduced model
     ///   may lose half again of the full template's accuracy, and a tiny absolute slack keeps a
     ///   near-perfect full fit from forbidding every reduction;
     /// - floor of 1 parameter, at most 12 reductions;
@@ -99,6 +100,7 @@ impl Default for ReductionConfig {
             held_out_margin: 0.005,
             min_parameters: 1,
             max_steps: 12,
+            attempts_per_step: 3,
             decimation: 2,
             full_fit_iterations: 40,
             refit_iterations: 25,
@@ -122,8 +124,8 @@ fn invalid(setting: &'static str, value: impl ToString, expected: &'static str) 
 }
 
 impl ReductionConfig {
-    /// Held-out tolerance: a reduction is kept while, for P and for Q,
-    /// NRMSE_held-out(reduced) ≤ `factor` · NRMSE_held-out(full) + `margin`.
+    /// Tolerance: a reduction is kept while, for P and for Q, on the held-out and on the
+    /// training traces, NRMSE(reduced) ≤ `factor` · NRMSE(full) + `margin`.
     /// `factor` ≥ 1, `margin` ≥ 0 (a fraction of the data range, e.g. 0.005).
     pub fn with_tolerance(mut self, factor: f64, margin: f64) -> Result<Self, ConfigError> {
         if !(factor.is_finite() && factor >= 1.0) {
@@ -156,6 +158,17 @@ impl ReductionConfig {
             return Err(invalid("max_steps", n, "at least 1"));
         }
         self.max_steps = n;
+        Ok(self)
+    }
+
+    /// How many boundary limits one step may try (≥ 1): when a reduction breaks the tolerance,
+    /// the geodesics are rerun and the next limit (the other direction, or the next part of a
+    /// coupled limit) is tried, up to this many in all.
+    pub fn with_attempts_per_step(mut self, n: usize) -> Result<Self, ConfigError> {
+        if n == 0 {
+            return Err(invalid("attempts_per_step", n, "at least 1"));
+        }
+        self.attempts_per_step = n;
         Ok(self)
     }
 
@@ -218,10 +231,13 @@ impl ReductionConfig {
         self.decimation
     }
 
-    /// Whether held-out errors `reduced` stay within the tolerance of `full` (P and Q).
-    pub fn within_tolerance(&self, full: &SignalErrors, reduced: &SignalErrors) -> bool {
+    /// Whether the errors `reduced` stay within the tolerance of `full`: P and Q, on the
+    /// held-out traces and also on the training traces (with few held-out cases, a reduction
+    /// that ruins the fit could otherwise pass on cases that barely excite the removed part).
+    pub fn within_tolerance(&self, full: &ErrorPair, reduced: &ErrorPair) -> bool {
         let ok = |f: f64, r: f64| r <= self.held_out_factor * f + self.held_out_margin;
-        ok(full.p, reduced.p) && ok(full.q, reduced.q)
+        let both = |f: &SignalErrors, r: &SignalErrors| ok(f.p, r.p) && ok(f.q, r.q);
+        both(&full.held_out, &reduced.held_out) && both(&full.training, &reduced.training)
     }
 }
 
@@ -434,7 +450,9 @@ fn errors_of(
 /// its largest declared single-parameter part (the refit and the held-out check judge it).
 struct Capturing {
     inner: TemplateReducer,
-    taken: Mutex<Option<(Reduction, TemplateFit)>>,
+    /// limits already tried at this step (parameter and limit), refused on a retry
+    skip: Vec<String>,
+    taken: Mutex<Option<(String, Reduction, TemplateFit)>>,
 }
 
 impl Capturing {
@@ -469,10 +487,23 @@ impl Reducer for Capturing {
     fn reduce(&self, reading: &BoundaryReading) -> Result<ReducedModel, ModelError> {
         let mut first_error = None;
         for single in Self::singles(reading) {
+            let key = match self.inner.limit_of(&single) {
+                Ok((parameter, limit)) => format!("{parameter} {limit:?}"),
+                Err(e) => {
+                    first_error.get_or_insert(e);
+                    continue;
+                }
+            };
+            if self.skip.contains(&key) {
+                first_error.get_or_insert(ModelError::Unsupported {
+                    what: format!("`{}`: tried already at this step", single.sentence),
+                });
+                continue;
+            }
             match self.inner.reduce_template(&single) {
                 Ok((reduction, fit, start)) => {
                     let description = reduction.sentence.clone();
-                    *self.taken.lock().expect("not poisoned") = Some((reduction, fit.clone()));
+                    *self.taken.lock().expect("not poisoned") = Some((key, reduction, fit.clone()));
                     return Ok(ReducedModel {
                         model: Box::new(fit),
                         start_log_params: start,
@@ -574,78 +605,134 @@ pub fn reduce_template(
                 steps: config.max_steps,
             };
         }
-        let reducer = Capturing {
-            inner: TemplateReducer {
-                template: current.template_at(&current_lp),
-                traces: train_dec.clone(),
-                weights: SignalWeights::default(),
-                eval: EvalConfig::default(),
-            },
-            taken: Mutex::new(None),
-        };
-        let boundary = match mbam_boundary(&current, &current_lp, &reducer, &config.mbam) {
-            Ok(b) => b,
-            Err(ReduceError::NoBoundary { arc_lengths, stops }) => {
-                break StopReason::NoBoundary {
-                    reason: format!("geodesic stops {stops:?} at arc lengths {arc_lengths:?}"),
+        let mut skip: Vec<String> = Vec::new();
+        let mut rejected: Vec<(String, String)> = Vec::new();
+        let mut outcome = None;
+        let mut last_rejected = None;
+        let mut halt = None;
+        while skip.len() < config.attempts_per_step {
+            let reducer = Capturing {
+                inner: TemplateReducer {
+                    template: current.template_at(&current_lp),
+                    traces: train_dec.clone(),
+                    weights: SignalWeights::default(),
+                    eval: EvalConfig::default(),
+                },
+                skip: skip.clone(),
+                taken: Mutex::new(None),
+            };
+            let boundary = match mbam_boundary(&current, &current_lp, &reducer, &config.mbam) {
+                Ok(b) => b,
+                Err(ReduceError::NoBoundary { arc_lengths, stops }) => {
+                    halt = Some(StopReason::NoBoundary {
+                        reason: format!("geodesic stops {stops:?} at arc lengths {arc_lengths:?}"),
+                    });
+                    break;
                 }
-            }
-            Err(e @ ReduceError::Reduction { .. }) => {
-                break StopReason::Refused {
-                    reason: e.to_string(),
+                Err(e @ ReduceError::Reduction { .. }) => {
+                    halt = Some(StopReason::Refused {
+                        reason: e.to_string(),
+                    });
+                    break;
                 }
-            }
-            Err(e) => {
-                break StopReason::Failed {
-                    reason: e.to_string(),
+                Err(e) => {
+                    halt = Some(StopReason::Failed {
+                        reason: e.to_string(),
+                    });
+                    break;
                 }
+            };
+            let (key, reduction, reduced_problem) = reducer
+                .taken
+                .into_inner()
+                .expect("not poisoned")
+                .expect("the accepted reduction was recorded");
+            skip.push(key);
+            let refit = budget_fit(
+                &reduced_problem,
+                &boundary.reduced.start_log_params,
+                &config.lm,
+                config.refit_iterations,
+            );
+            let (reduced_lp, refit_cost, refit_iterations) = match refit {
+                Ok(r) => r,
+                Err(reason) => {
+                    rejected.push((
+                        reduction.sentence.clone(),
+                        format!("refit failed: {reason}"),
+                    ));
+                    continue;
+                }
+            };
+            let reduced_template = reduced_problem.template_at(&reduced_lp);
+            let errors_after = errors_of(&reduced_template, &train_dec, &held_dec)?;
+            let accepted = config.within_tolerance(&full_errors_dec, &errors_after);
+            let chosen = &boundary.geodesics[boundary.chosen];
+            // points where the integration produced non-finite numbers are left out of the
+            // record (JSON has no infinities)
+            let finite: Vec<&super::GeodesicPoint> = chosen
+                .path
+                .iter()
+                .filter(|p| p.arc_length.is_finite() && p.log_params.iter().all(|x| x.is_finite()))
+                .collect();
+            let mut refused = boundary.refused.clone();
+            refused.retain(|(_, reason)| !reason.contains("tried already at this step"));
+            refused.extend(rejected.iter().cloned());
+            let step = ReductionStep {
+                index: steps.len() + 1,
+                sentence: reduction.sentence.clone(),
+                boundary: boundary.reading.sentence.clone(),
+                refused,
+                accepted,
+                parameters_before: current_lp.len(),
+                parameters_after: reduced_lp.len(),
+                states_before: reduction.states_before,
+                states_after: reduction.states_after,
+                errors_before: current_errors,
+                errors_after,
+                parameter_names: current.parameter_names(),
+                log_params_before: current_lp.clone(),
+                fisher_eigenvalues: boundary
+                    .fisher
+                    .eigenvalues
+                    .iter()
+                    .map(|e| if e.is_finite() { *e } else { 0.0 })
+                    .collect(),
+                geodesic_arc_length: finite.iter().map(|p| p.arc_length).collect(),
+                geodesic_log_params: finite.iter().map(|p| p.log_params.clone()).collect(),
+                geodesic_stop: format!("{:?}", chosen.stop),
+                refit_iterations,
+                refit_cost,
+            };
+            if accepted {
+                outcome = Some((step, reduced_problem, reduced_lp, errors_after));
+                break;
             }
-        };
-        let (reduction, reduced_problem) = reducer
-            .taken
-            .into_inner()
-            .expect("not poisoned")
-            .expect("the accepted reduction was recorded");
-        let refit = budget_fit(
-            &reduced_problem,
-            &boundary.reduced.start_log_params,
-            &config.lm,
-            config.refit_iterations,
-        );
-        let (reduced_lp, refit_cost, refit_iterations) = match refit {
-            Ok(r) => r,
-            Err(reason) => break StopReason::Failed { reason },
-        };
-        let reduced_template = reduced_problem.template_at(&reduced_lp);
-        let errors_after = errors_of(&reduced_template, &train_dec, &held_dec)?;
-        let accepted = config.within_tolerance(&full_errors_dec.held_out, &errors_after.held_out);
-        let chosen = &boundary.geodesics[boundary.chosen];
-        let step = ReductionStep {
-            index: steps.len() + 1,
-            sentence: reduction.sentence.clone(),
-            boundary: boundary.reading.sentence.clone(),
-            refused: boundary.refused.clone(),
-            accepted,
-            parameters_before: current_lp.len(),
-            parameters_after: reduced_lp.len(),
-            states_before: reduction.states_before,
-            states_after: reduction.states_after,
-            errors_before: current_errors,
-            errors_after,
-            parameter_names: current.parameter_names(),
-            log_params_before: current_lp.clone(),
-            fisher_eigenvalues: boundary.fisher.eigenvalues.clone(),
-            geodesic_arc_length: chosen.path.iter().map(|p| p.arc_length).collect(),
-            geodesic_log_params: chosen.path.iter().map(|p| p.log_params.clone()).collect(),
-            geodesic_stop: format!("{:?}", chosen.stop),
-            refit_iterations,
-            refit_cost,
+            rejected.push((
+                step.sentence.clone(),
+                format!(
+                    "beyond the tolerance: NRMSE P/Q training {:.2}/{:.2} %, held out \
+                     {:.2}/{:.2} %",
+                    100.0 * errors_after.training.p,
+                    100.0 * errors_after.training.q,
+                    100.0 * errors_after.held_out.p,
+                    100.0 * errors_after.held_out.q
+                ),
+            ));
+            last_rejected = Some(step);
+        }
+        let Some((step, reduced_problem, reduced_lp, errors_after)) = outcome else {
+            if let Some(step) = last_rejected {
+                observer(ReductionEvent::Step(&step));
+                steps.push(step);
+                break StopReason::Tolerance { step: steps.len() };
+            }
+            break halt.unwrap_or(StopReason::Failed {
+                reason: format!("every refit failed: {rejected:?}"),
+            });
         };
         observer(ReductionEvent::Step(&step));
         steps.push(step);
-        if !accepted {
-            break StopReason::Tolerance { step: steps.len() };
-        }
         current = reduced_problem;
         current_lp = reduced_lp;
         current_errors = errors_after;
@@ -717,11 +804,25 @@ pub struct ReducedFile {
     pub stop: StopReason,
     pub split: SplitRecord,
     pub errors: FileErrors,
-    pub config: ReductionConfig,
+    pub settings: ReductionSettings,
+}
+
+/// The loop's settings as written to the file.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ReductionSettings {
+    pub tolerance_factor: f64,
+    pub tolerance_margin: f64,
+    pub min_parameters: usize,
+    pub max_steps: usize,
+    pub attempts_per_step: usize,
+    pub decimation: usize,
+    pub full_fit_iterations: usize,
+    pub refit_iterations: usize,
+    pub final_full_rate_refit: bool,
 }
 
 impl ReducedFile {
-    pub fn new(outcome: ReductionOutcome, split: SplitRecord, config: ReductionConfig) -> Self {
+    pub fn new(outcome: ReductionOutcome, split: SplitRecord, config: &ReductionConfig) -> Self {
         Self {
             format: REDUCED_FORMAT.into(),
             template: outcome.template,
@@ -733,7 +834,17 @@ impl ReducedFile {
                 full: outcome.full_errors,
                 reduced: outcome.reduced_errors,
             },
-            config,
+            settings: ReductionSettings {
+                tolerance_factor: config.held_out_factor,
+                tolerance_margin: config.held_out_margin,
+                min_parameters: config.min_parameters,
+                max_steps: config.max_steps,
+                attempts_per_step: config.attempts_per_step,
+                decimation: config.decimation,
+                full_fit_iterations: config.full_fit_iterations,
+                refit_iterations: config.refit_iterations,
+                final_full_rate_refit: config.final_full_rate_refit,
+            },
         }
     }
 
@@ -791,15 +902,18 @@ impl ReducedFile {
                 step.geodesic_stop,
             );
             for (limit, reason) in &step.refused {
-                let _ = writeln!(s, "  refused first: {limit}: {reason}");
+                let _ = writeln!(s, "  tried first: {limit}: {reason}");
             }
         }
-        let (factor, margin) = self.config.tolerance();
+        let (factor, margin) = (
+            self.settings.tolerance_factor,
+            self.settings.tolerance_margin,
+        );
         let _ = writeln!(
             s,
             "\nstopped: {}\nreduced template: {} free parameters, {} states; NRMSE P {:.2} %, \
-             Q {:.2} % (training), P {:.2} %, Q {:.2} % (held out); tolerance: held-out ≤ \
-             {factor} × full + {margin}",
+             Q {:.2} % (training), P {:.2} %, Q {:.2} % (held out); tolerance: NRMSE ≤ \
+             {factor} × full + {margin} (training and held out)",
             self.stop.describe(),
             free(&self.template),
             self.template.state_count(),
