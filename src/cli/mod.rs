@@ -90,6 +90,9 @@ pub enum Command {
         /// Keep every k-th sample while reducing (default 2).
         #[arg(long)]
         decimation: Option<usize>,
+        /// How many training traces the geodesics use (default 6; refits use all).
+        #[arg(long)]
+        geodesic_traces: Option<usize>,
         /// No progress lines, only the summary.
         #[arg(long)]
         quiet: bool,
@@ -137,6 +140,7 @@ pub fn run(cli: Cli) -> Result<i32, Error> {
             min_parameters,
             max_steps,
             decimation,
+            geodesic_traces,
             quiet,
         } => reduce::run(reduce::Request {
             traces,
@@ -148,6 +152,7 @@ pub fn run(cli: Cli) -> Result<i32, Error> {
             min_parameters,
             max_steps,
             decimation,
+            geodesic_traces,
             quiet,
         }),
         Command::Simulate {

@@ -19,6 +19,7 @@ pub struct Request {
     pub min_parameters: Option<usize>,
     pub max_steps: Option<usize>,
     pub decimation: Option<usize>,
+    pub geodesic_traces: Option<usize>,
     pub quiet: bool,
 }
 
@@ -73,6 +74,11 @@ fn config(req: &Request) -> Result<ReductionConfig, Error> {
         c = c
             .with_decimation(k)
             .map_err(|e| bad("--decimation", k.to_string(), e))?;
+    }
+    if let Some(n) = req.geodesic_traces {
+        c = c
+            .with_geodesic_traces(n)
+            .map_err(|e| bad("--geodesic-traces", n.to_string(), e))?;
     }
     Ok(c)
 }

@@ -61,6 +61,7 @@ pub struct ReductionConfig {
     max_steps: usize,
     attempts_per_step: usize,
     decimation: usize,
+    geodesic_traces: usize,
     full_fit_iterations: usize,
     refit_iterations: usize,
     final_full_rate_refit: bool,
@@ -102,6 +103,7 @@ impl Default for ReductionConfig {
             max_steps: 12,
             attempts_per_step: 3,
             decimation: 2,
+            geodesic_traces: 6,
             full_fit_iterations: 40,
             refit_iterations: 25,
             final_full_rate_refit: true,
@@ -183,6 +185,24 @@ impl ReductionConfig {
         }
         self.decimation = k;
         Ok(self)
+    }
+
+    /// How many training traces (spread evenly over the name-sorted set) the Fisher information
+    /// and the geodesics use (≥ 1). The geodesic only has to find the direction in which the
+    /// model is sloppy and the boundary it runs into — a property of the model structure that a
+    /// few varied faults show as well as many — while every refit and every tolerance check still
+    /// uses all training and held-out traces. Each geodesic step costs a Jacobian and a second
+    /// directional derivative over these traces, so this is the loop's main speed lever.
+    pub fn with_geodesic_traces(mut self, n: usize) -> Result<Self, ConfigError> {
+        if n == 0 {
+            return Err(invalid("geodesic_traces", n, "at least 1"));
+        }
+        self.geodesic_traces = n;
+        Ok(self)
+    }
+
+    pub fn geodesic_traces(&self) -> usize {
+        self.geodesic_traces
     }
 
     /// Iteration budgets of the full fit and of each refit (each ≥ 1).
@@ -389,6 +409,16 @@ pub fn decimate(trace: &FitTrace, k: usize) -> FitTrace {
     }
 }
 
+/// `n` traces spread evenly over `traces` (all of them when `n` ≥ their count).
+fn spread_subset(traces: &[FitTrace], n: usize) -> Vec<FitTrace> {
+    if n >= traces.len() {
+        return traces.to_vec();
+    }
+    (0..n)
+        .map(|j| traces[j * traces.len() / n].clone())
+        .collect()
+}
+
 fn problem(template: &Template, traces: &[FitTrace]) -> Result<TemplateFit, ReductionError> {
     TemplateFit::new(
         template,
@@ -574,6 +604,7 @@ pub fn reduce_template(
     let k = config.decimation;
     let train_dec: Vec<FitTrace> = training.iter().map(|t| decimate(t, k)).collect();
     let held_dec: Vec<FitTrace> = held_out.iter().map(|t| decimate(t, k)).collect();
+    let geo_dec = spread_subset(&train_dec, config.geodesic_traces);
 
     // the full template
     let full_problem = problem(template, &train_dec)?;
@@ -621,7 +652,19 @@ pub fn reduce_template(
                 skip: skip.clone(),
                 taken: Mutex::new(None),
             };
-            let boundary = match mbam_boundary(&current, &current_lp, &reducer, &config.mbam) {
+            // the geodesics see a spread subset of the training traces (same parameters, same
+            // order); the reducer and the refit below see them all
+            let geodesic_problem = if geo_dec.len() < train_dec.len() {
+                Some(problem(&current.template_at(&current_lp), &geo_dec)?)
+            } else {
+                None
+            };
+            let boundary = match mbam_boundary(
+                geodesic_problem.as_ref().unwrap_or(&current),
+                &current_lp,
+                &reducer,
+                &config.mbam,
+            ) {
                 Ok(b) => b,
                 Err(ReduceError::NoBoundary { arc_lengths, stops }) => {
                     halt = Some(StopReason::NoBoundary {
