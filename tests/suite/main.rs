@@ -8,5 +8,6 @@ mod fmi;
 mod full_converter;
 mod mbam;
 mod ode;
+mod recording;
 mod residual;
 mod simulate_cli;
