@@ -389,8 +389,8 @@ impl GapConfig {
         self.method = method;
         self
     }
-    /// OMP: the most DCT atoms per recovery window (≥ 1; fewer when the window has fewer known
-    /// samples).
+    /// OMP: the most DCT atoms per recovery window (≥ 1; never more than a quarter of the
+    /// window's known samples).
     pub fn with_max_atoms(mut self, max_atoms: usize) -> Result<Self, RecordingError> {
         if max_atoms == 0 {
             return Err(RecordingError::Setting {
@@ -1034,7 +1034,9 @@ pub fn fill_gaps(
         let detrended: Vec<f64> = known.iter().map(|&k| window[k] - line(k)).collect();
         let method = match config.method {
             GapMethod::Omp => RecoveryMethod::Omp(
-                OmpSettings::new(config.max_atoms.min(known.len()).max(1))
+                // at most a quarter of the known samples: the least-squares fit on the chosen
+                // atoms stays overdetermined, so the atoms cannot simply interpolate the data
+                OmpSettings::new(config.max_atoms.min(known.len() / 4).max(1))
                     .and_then(|s| s.with_residual_tolerance(config.residual_tolerance))
                     .map_err(recovery_error)?,
             ),

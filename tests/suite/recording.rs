@@ -495,14 +495,17 @@ fn gaps_are_filled_and_reported_and_long_gaps_refused() {
         .iter()
         .map(|w| w["channel"].as_str().unwrap())
         .collect();
-    assert_eq!(channels, ["v_re", "v_im", "i_re", "i_im"]);
+    // the missing rows in every channel; the missing cell of i_im is far away: its own window
+    assert_eq!(channels, ["v_re", "v_im", "i_re", "i_im", "i_im"]);
     assert_eq!(filled[0]["samples"], json!([150, 151, 152]));
-    assert_eq!(filled[3]["samples"], json!([300]));
+    assert_eq!(filled[4]["samples"], json!([300]));
+    eprintln!("gappy recording, filled windows: {filled}");
     // the fault (a dip to 0.5 pu at 0.2 s) is detected from |v|
     let fault = &trace.meta.case["recording"]["fault"];
     assert!(fault["how"].as_str().unwrap().starts_with("detected"));
     let start = fault["start_s"].as_f64().unwrap();
-    assert!((0.17..0.2).contains(&start), "{start}");
+    // |v| ≈ 1 − 0.5·exp(−((t − 0.2)/0.03)²) crosses 0.9 at t ≈ 0.2 − 0.03·√ln 5 ≈ 0.162 s
+    assert!((0.155..0.17).contains(&start), "{start}");
     // smooth channels, so the fill is close to the truth (measured, not a published number)
     let i_im = trace.channel("i_im").unwrap();
     assert!(
@@ -510,11 +513,15 @@ fn gaps_are_filled_and_reported_and_long_gaps_refused() {
         "{}",
         i_im[300]
     );
+    // the 3 ms hole in v_im (which changes by ~1e-3 across it): the fill is measured here
+    // against the known function; 1e-4 is a tenth of that change (a loose bound: a 16-atom DCT
+    // fit of a smooth window, fit RMS ~1e-6, is not exact)
     let v_im = trace.channel("v_im").unwrap();
-    for k in 150..153 {
-        let t = k as f64 * 1e-3;
-        assert!((v_im[k] - 0.1 * (3.0 * t).sin()).abs() < 1e-6, "{k}");
-    }
+    let worst = (150..153)
+        .map(|k| (v_im[k] - 0.1 * (3.0 * k as f64 * 1e-3).sin()).abs())
+        .fold(0.0, f64::max);
+    eprintln!("gappy recording: worst v_im fill error {worst:.2e}");
+    assert!(worst < 1e-4, "{worst:e}");
 
     // a hole of 8 ms with a 5 ms limit is refused, naming the channel, times and setting
     gappy_csv(dir.path(), 8);
