@@ -996,7 +996,9 @@ pub fn fill_gaps(
         }
     }
     // windows [lo, hi) around each gap, merged when they overlap
-    let mut windows: Vec<(usize, usize, Vec<(usize, usize)>)> = Vec::new();
+    // (first index, end index, the gaps inside as (first index, length))
+    type Window = (usize, usize, Vec<(usize, usize)>);
+    let mut windows: Vec<Window> = Vec::new();
     for &(start, len) in &spans {
         let context = MIN_CONTEXT.max(CONTEXT_PER_GAP * len);
         let lo = start.saturating_sub(context);
@@ -1050,7 +1052,7 @@ pub fn fill_gaps(
             .map_err(recovery_error)?;
         let mut samples = Vec::new();
         for &(start, len) in &gaps {
-            for k in start..start + len {
+            for (k, value) in values.iter_mut().enumerate().skip(start).take(len) {
                 let filled = recovered.signal[k - lo] + line(k - lo);
                 if !filled.is_finite() {
                     return Err(RecordingError::Invalid {
@@ -1061,7 +1063,7 @@ pub fn fill_gaps(
                         ),
                     });
                 }
-                values[k] = filled;
+                *value = filled;
                 samples.push(k);
             }
         }
@@ -1192,7 +1194,7 @@ impl Scaling {
 }
 
 fn scaled(values: &[f64], factor: f64) -> Vec<f64> {
-    if factor == 1.0 {
+    if factor.to_bits() == 1f64.to_bits() {
         // keep the recorded bits (a per-unit recording round-trips exactly)
         values.to_vec()
     } else {
