@@ -2,6 +2,7 @@
 
 mod demo;
 mod export;
+mod ingest;
 mod init;
 mod reduce;
 mod simulate;
@@ -97,6 +98,18 @@ pub enum Command {
         #[arg(long)]
         quiet: bool,
     },
+    /// Turn recordings (CSV or COMTRADE) into traces, as a mapping file describes.
+    Ingest {
+        /// The mapping file (TOML).
+        #[arg(long)]
+        map: PathBuf,
+        /// Output folder for the traces.
+        #[arg(long)]
+        out: PathBuf,
+        /// Output sample step in seconds (default: the mapping's, else the recording's).
+        #[arg(long)]
+        step: Option<f64>,
+    },
     /// Generate fault-response traces from a detailed model.
     Simulate {
         /// Study file (default: the embedded demo study).
@@ -154,6 +167,11 @@ pub fn run(cli: Cli) -> Result<i32, Error> {
             decimation,
             geodesic_traces,
             quiet,
+        }),
+        Command::Ingest { map, out, step } => ingest::run(ingest::Request {
+            map,
+            out,
+            step_s: step,
         }),
         Command::Simulate {
             study,

@@ -1,4 +1,5 @@
 //! Signals: traces of fault responses, their files, and recordings.
 pub mod comtrade;
 pub mod phasor;
+pub mod recording;
 pub mod trace;

@@ -8,6 +8,7 @@ mod fmi;
 mod full_converter;
 mod mbam;
 mod ode;
+mod recording;
 mod reduction;
 mod residual;
 mod simulate_cli;
