@@ -392,8 +392,8 @@ fn fmpy_validates_the_fmi3_fmu_and_its_simulation_equals_the_rust_model() {
         }
         let o = m.outputs(&inputs(k)).unwrap();
         let ours = [o.i_re, o.i_im, o.p, o.q, f64::from(u8::from(latched))];
-        for j in 0..5 {
-            worst = worst.max((cols[j][k] - ours[j]).abs());
+        for (c, o) in cols.iter().zip(ours) {
+            worst = worst.max((c[k] - o).abs());
         }
     }
     eprintln!(
