@@ -9,6 +9,8 @@
 #include <stdint.h>
 #include <stdbool.h>
 
+#define TIME_VR 12
+
 typedef int32_t fmi3Status;
 
 typedef void *fmi3Instance;

@@ -176,6 +176,10 @@ pub const EXPORTED_FUNCTIONS: [&str; 75] = [
     "fmi3ActivateModelPartition",
 ];
 
+/// Value reference of the independent variable `time` (FMI 3.0 requires one; it is not part
+/// of the shared variable table because FMI 2.0 descriptions do not list it).
+pub const TIME_VR: u32 = 12;
+
 /// Why the event-mode functions are refused.
 const NO_EVENT_MODE: &str =
     "the model description declares hasEventMode=\"false\": the FMU has no event mode";
@@ -517,7 +521,15 @@ pub unsafe extern "C" fn fmi3GetFloat64(
     entry(instance, "fmi3GetFloat64", GETTABLE, |inner, _| {
         arrays_ok(nValueReferences, valueReferences, values)?;
         scalar_count(nValueReferences, nValues)?;
-        get_reals(inner, valueReferences, nValueReferences, values).map(|()| fmi3OK)
+        for k in 0..nValueReferences {
+            let r = valueReferences.add(k);
+            if *r == TIME_VR {
+                *values.add(k) = inner.time;
+            } else {
+                get_reals(inner, r, 1, values.add(k))?;
+            }
+        }
+        Ok(fmi3OK)
     })
 }
 
@@ -1728,6 +1740,8 @@ mod tests {
         names.sort_unstable();
         names.dedup();
         assert_eq!(names.len(), 75);
+        // the independent variable's value reference is free in the shared table
+        assert!(crate::variables::VARIABLES.iter().all(|v| v.vr != TIME_VR));
     }
 
     /// A resource folder with a detailed model file; returns (folder, token).

@@ -450,6 +450,15 @@ pub fn model_description_v3(model: &ModelFile, token: &str, model_identifier: &s
     ));
 
     put(Event::Start(BytesStart::new("ModelVariables")));
+    // FMI 3.0 requires exactly one independent variable
+    let time_vr = understudy_runtime::fmi3::TIME_VR.to_string();
+    put(Event::Empty(BytesStart::new("Float64").with_attributes([
+        ("name", "time"),
+        ("valueReference", time_vr.as_str()),
+        ("description", "Simulation time (s)"),
+        ("causality", "independent"),
+        ("variability", "continuous"),
+    ])));
     for v in &VARIABLES {
         let vr = v.vr.to_string();
         let mut e = BytesStart::new(match v.ty {
