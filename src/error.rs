@@ -64,11 +64,7 @@ impl Error {
             Error::Trace(TraceError::Parse { .. } | TraceError::Invalid { .. }) => 2,
             Error::Io { .. } | Error::Trace(TraceError::Io { .. }) => 1,
             Error::Integration { .. } | Error::Failed(_) => 1,
-            Error::Export(
-                ExportError::Model(_)
-                | ExportError::UnsupportedVersion(_)
-                | ExportError::Platform(_),
-            ) => 2,
+            Error::Export(ExportError::Model(_) | ExportError::Platform(_)) => 2,
             Error::Export(_) => 1,
         }
     }

@@ -178,7 +178,7 @@ pub enum Fmi2State {
 
 use Fmi2State as S;
 
-const ANY: &[Fmi2State] = &[
+pub(crate) const ANY: &[Fmi2State] = &[
     S::Instantiated,
     S::InitializationMode,
     S::StepComplete,
@@ -187,7 +187,7 @@ const ANY: &[Fmi2State] = &[
     S::Terminated,
     S::Error,
 ];
-const GETTABLE: &[Fmi2State] = &[
+pub(crate) const GETTABLE: &[Fmi2State] = &[
     S::InitializationMode,
     S::StepComplete,
     S::StepFailed,
@@ -195,7 +195,8 @@ const GETTABLE: &[Fmi2State] = &[
     S::Terminated,
     S::Error,
 ];
-const SETTABLE: &[Fmi2State] = &[S::Instantiated, S::InitializationMode, S::StepComplete];
+pub(crate) const SETTABLE: &[Fmi2State] =
+    &[S::Instantiated, S::InitializationMode, S::StepComplete];
 const STATUS_QUERY: &[Fmi2State] = &[
     S::StepComplete,
     S::StepFailed,
@@ -203,10 +204,41 @@ const STATUS_QUERY: &[Fmi2State] = &[
     S::Terminated,
 ];
 
-/// The host's callbacks, copied at instantiation.
-struct Host {
-    logger: Option<fmi2CallbackLogger>,
-    environment: fmi2ComponentEnvironment,
+/// The host's logger and environment, copied at instantiation; the same instance core serves
+/// the FMI 2.0 and the FMI 3.0 boundary, which differ in the logger's signature.
+#[derive(Clone, Copy)]
+pub(crate) enum Host {
+    Fmi2 {
+        logger: Option<fmi2CallbackLogger>,
+        environment: fmi2ComponentEnvironment,
+    },
+    Fmi3 {
+        logger: crate::fmi3::fmi3LogMessageCallback,
+        environment: crate::fmi3::fmi3InstanceEnvironment,
+    },
+}
+
+impl Host {
+    fn standard(&self) -> &'static str {
+        match self {
+            Host::Fmi2 { .. } => "FMI 2.0",
+            Host::Fmi3 { .. } => "FMI 3.0",
+        }
+    }
+
+    /// The standard's name of a state (FMI 3.0 calls the state after a step `StepMode`).
+    fn state_name(&self, state: Fmi2State) -> &'static str {
+        match (self, state) {
+            (_, S::Instantiated) => "Instantiated",
+            (_, S::InitializationMode) => "InitializationMode",
+            (Host::Fmi2 { .. }, S::StepComplete) => "StepComplete",
+            (Host::Fmi3 { .. }, S::StepComplete) => "StepMode",
+            (_, S::StepFailed) => "StepFailed",
+            (_, S::StepCanceled) => "StepCanceled",
+            (_, S::Terminated) => "Terminated",
+            (_, S::Error) => "Error",
+        }
+    }
 }
 
 // SAFETY: the environment pointer is the host's; the standard makes the host responsible for
@@ -214,7 +246,7 @@ struct Host {
 unsafe impl Send for Host {}
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
-enum Category {
+pub(crate) enum Category {
     Error,
     Warning,
     Call,
@@ -230,17 +262,17 @@ impl Category {
     }
 }
 
-struct Inner {
-    state: Fmi2State,
+pub(crate) struct Inner {
+    pub(crate) state: Fmi2State,
     host: Host,
     logging_on: bool,
     /// Enabled categories (Error, Warning, Call).
     categories: [bool; 3],
-    guid: String,
+    pub(crate) guid: String,
     file: ModelFile,
     model: LoadedModel,
-    start_time: f64,
-    time: f64,
+    pub(crate) start_time: f64,
+    pub(crate) time: f64,
     inputs: Inputs,
     setpoints: Setpoints,
     latched_out_of_envelope: bool,
@@ -248,8 +280,8 @@ struct Inner {
 
 /// One FMU instance (what `fmi2Component` points to).
 pub struct Instance {
-    name: CString,
-    inner: Mutex<Inner>,
+    pub(crate) name: CString,
+    pub(crate) inner: Mutex<Inner>,
 }
 
 /// An FMU state as handed to the host (`fmi2FMUstate` points to it).
@@ -282,13 +314,13 @@ impl Inner {
         }
     }
 
-    fn log(&self, name: &CStr, status: fmi2Status, category: Category, message: &str) {
+    pub(crate) fn log(&self, name: &CStr, status: fmi2Status, category: Category, message: &str) {
         if self.enabled(category) {
             send_log(&self.host, name, status, category, message);
         }
     }
 
-    fn reset_to_start(&mut self) -> Result<(), String> {
+    pub(crate) fn reset_to_start(&mut self) -> Result<(), String> {
         self.model = self.file.build().map_err(|e| e.to_string())?;
         self.inputs = self.file.start.inputs;
         self.setpoints = self.file.start.setpoints;
@@ -351,23 +383,47 @@ impl Inner {
     }
 }
 
-fn send_log(host: &Host, name: &CStr, status: fmi2Status, category: Category, message: &str) {
-    let Some(logger) = host.logger else { return };
-    // the message is the format string: double every `%`, strip NULs
-    let text = message.replace('%', "%%").replace('\0', " ");
-    let Ok(text) = CString::new(text) else { return };
+pub(crate) fn send_log(
+    host: &Host,
+    name: &CStr,
+    status: fmi2Status,
+    category: Category,
+    message: &str,
+) {
     let category = CString::new(category.name()).expect("category names have no NUL");
-    // SAFETY: the host supplied the logger for exactly this call shape; every pointer is a
-    // valid NUL-terminated string that outlives the call.
-    unsafe {
-        logger(
-            host.environment,
-            name.as_ptr(),
-            status,
-            category.as_ptr(),
-            text.as_ptr(),
-        )
-    };
+    match *host {
+        Host::Fmi2 {
+            logger: Some(logger),
+            environment,
+        } => {
+            // the message is the format string: double every `%`, strip NULs
+            let text = message.replace('%', "%%").replace('\0', " ");
+            let Ok(text) = CString::new(text) else { return };
+            // SAFETY: the host supplied the logger for exactly this call shape; every pointer
+            // is a valid NUL-terminated string that outlives the call.
+            unsafe {
+                logger(
+                    environment,
+                    name.as_ptr(),
+                    status,
+                    category.as_ptr(),
+                    text.as_ptr(),
+                )
+            };
+        }
+        Host::Fmi3 {
+            logger: Some(logger),
+            environment,
+        } => {
+            // FMI 3.0's logger takes the message as plain text (not a format string)
+            let Ok(text) = CString::new(message.replace('\0', " ")) else {
+                return;
+            };
+            // SAFETY: as above, for the FMI 3.0 callback's shape.
+            unsafe { logger(environment, status, category.as_ptr(), text.as_ptr()) };
+        }
+        _ => {}
+    }
 }
 
 fn panic_text(payload: &Box<dyn std::any::Any + Send>) -> String {
@@ -380,10 +436,19 @@ fn panic_text(payload: &Box<dyn std::any::Any + Send>) -> String {
     }
 }
 
+#[cfg(test)]
+thread_local! {
+    /// Test-only fault injection: an entry point whose call name is here panics inside its
+    /// guard (compiled only into the runtime's own unit tests, never into a shipped library).
+    pub(crate) static PANIC_IN: std::cell::Cell<Option<&'static str>> =
+        const { std::cell::Cell::new(None) };
+}
+
 /// Run `body` on the instance behind `c`, in one of the `allowed` states, catching panics.
 /// `Err(message)` from the body logs `call: message`, moves to the error state and returns
-/// `fmi2Error`.
-fn entry(
+/// `fmi2Error` (= `fmi3Error`: both standards number their statuses alike). Serves the FMI 2.0
+/// and the FMI 3.0 entry points.
+pub(crate) fn entry(
     c: fmi2Component,
     call: &'static str,
     allowed: &[Fmi2State],
@@ -399,15 +464,23 @@ fn entry(
     let outcome = catch_unwind(AssertUnwindSafe(|| {
         let mut inner = instance.inner.lock().unwrap_or_else(|p| p.into_inner());
         if !allowed.contains(&inner.state) {
+            let host = inner.host;
+            let allowed: Vec<&str> = allowed.iter().map(|s| host.state_name(*s)).collect();
             let message = format!(
-                "{call}: called in state {:?}; the FMI 2.0 Co-Simulation state machine allows it only in {:?}",
-                inner.state, allowed
+                "{call}: called in state {}; the {} Co-Simulation state machine allows it only in {}",
+                host.state_name(inner.state),
+                host.standard(),
+                allowed.join(", ")
             );
             inner.log(name, fmi2Error, Category::Error, &message);
             inner.state = S::Error;
             return fmi2Error;
         }
         inner.log(name, fmi2OK, Category::Call, call);
+        #[cfg(test)]
+        if PANIC_IN.with(|p| p.get()) == Some(call) {
+            panic!("fault injected into {call}");
+        }
         match body(&mut inner, name) {
             Ok(status) => status,
             Err(message) => {
@@ -435,7 +508,7 @@ fn entry(
 }
 
 /// An entry point whose capability the model description does not claim.
-fn unsupported(c: fmi2Component, call: &'static str, why: &'static str) -> fmi2Status {
+pub(crate) fn unsupported(c: fmi2Component, call: &'static str, why: &'static str) -> fmi2Status {
     entry(c, call, ANY, |_, _| Err(format!("not supported: {why}")))
 }
 
@@ -503,7 +576,7 @@ pub fn resource_path(uri: &str) -> Result<PathBuf, String> {
 ///
 /// # Safety
 /// `p` is null or a valid NUL-terminated string.
-unsafe fn c_str<'a>(p: fmi2String, what: &str) -> Result<&'a str, String> {
+pub(crate) unsafe fn c_str<'a>(p: fmi2String, what: &str) -> Result<&'a str, String> {
     if p.is_null() {
         return Err(format!("{what} is NULL"));
     }
@@ -533,14 +606,30 @@ fn instantiate(
     let given_guid = unsafe { c_str(guid, "fmuGUID") }?;
     let location = unsafe { c_str(resource_location, "fmuResourceLocation") }?;
     let dir = resource_path(location)?;
+    load_instance(name, given_guid, "fmuGUID", &dir, host, logging_on)
+}
+
+/// An instance of the model file in the resource folder `dir`, whose fingerprint must equal
+/// `given_guid` (FMI 2.0's GUID, FMI 3.0's instantiation token; `what` names the argument).
+pub(crate) fn load_instance(
+    name: &str,
+    given_guid: &str,
+    what: &str,
+    dir: &std::path::Path,
+    host: Host,
+    logging_on: bool,
+) -> Result<Box<Instance>, String> {
+    if name.is_empty() {
+        return Err("instanceName is empty".into());
+    }
     let path = dir.join("model.json");
     let bytes = std::fs::read(&path)
         .map_err(|e| format!("cannot read the model file {}: {e}", path.display()))?;
     let expected_guid = ModelFile::guid_of(&bytes);
     if given_guid != expected_guid {
         return Err(format!(
-            "fmuGUID {given_guid} does not match the model file {} (GUID {expected_guid}): the \
-             model description and the resources come from different exports",
+            "{what} {given_guid} does not match the model file {} (fingerprint {expected_guid}): \
+             the model description and the resources come from different exports",
             path.display()
         ));
     }
@@ -602,14 +691,11 @@ pub unsafe extern "C" fn fmi2Instantiate(
         if functions.is_null() {
             return std::ptr::null_mut();
         }
-        let host = Host {
+        let host = Host::Fmi2 {
             logger: (*functions).logger,
             environment: (*functions).componentEnvironment,
         };
-        let log_host = Host {
-            logger: host.logger,
-            environment: host.environment,
-        };
+        let log_host = host;
         match instantiate(
             instanceName,
             fmuType,
@@ -656,6 +742,14 @@ pub unsafe extern "C" fn fmi2Instantiate(
 /// `c` is NULL or an instance from `fmi2Instantiate` not yet freed; no other call on it runs.
 #[no_mangle]
 pub unsafe extern "C" fn fmi2FreeInstance(c: fmi2Component) {
+    free_instance(c, "fmi2FreeInstance")
+}
+
+/// Free an instance of either boundary (NULL is ignored).
+///
+/// # Safety
+/// As [`fmi2FreeInstance`].
+pub(crate) unsafe fn free_instance(c: *mut c_void, call: &str) {
     if c.is_null() {
         return;
     }
@@ -663,7 +757,7 @@ pub unsafe extern "C" fn fmi2FreeInstance(c: fmi2Component) {
         let instance = Box::from_raw(c as *mut Instance);
         {
             let inner = instance.inner.lock().unwrap_or_else(|p| p.into_inner());
-            inner.log(&instance.name, fmi2OK, Category::Call, "fmi2FreeInstance");
+            inner.log(&instance.name, fmi2OK, Category::Call, call);
         }
         drop(instance);
     }));
@@ -681,43 +775,65 @@ pub unsafe extern "C" fn fmi2SetDebugLogging(
     categories: *const fmi2String,
 ) -> fmi2Status {
     entry(c, "fmi2SetDebugLogging", ANY, |inner, name| {
-        if nCategories > 0 && categories.is_null() {
-            return Err(format!(
-                "categories is NULL but nCategories = {nCategories}"
-            ));
-        }
-        inner.logging_on = loggingOn != fmi2False;
-        if nCategories == 0 {
-            inner.categories = [true; 3];
-            return Ok(fmi2OK);
-        }
-        let mut enabled = [false; 3];
-        let mut status = fmi2OK;
-        for k in 0..nCategories {
-            let category = c_str(*categories.add(k), "a category")?;
-            match category {
-                "logStatusError" => enabled[0] = true,
-                "logStatusWarning" => enabled[1] = true,
-                "logFmiCall" => enabled[2] = true,
-                "logAll" => enabled = [true; 3],
-                other => {
-                    status = fmi2Warning;
-                    send_log(
-                        &inner.host,
-                        name,
-                        fmi2Warning,
-                        Category::Warning,
-                        &format!(
-                            "fmi2SetDebugLogging: unknown log category `{other}` (offered: {})",
-                            LOG_CATEGORIES.map(|c| c.0).join(", ")
-                        ),
-                    );
-                }
+        set_debug_logging(
+            inner,
+            name,
+            "fmi2SetDebugLogging",
+            loggingOn != fmi2False,
+            nCategories,
+            categories,
+        )
+    })
+}
+
+/// Switch debug logging and choose categories (none listed = all), for either boundary.
+///
+/// # Safety
+/// `categories` holds `nCategories` NUL-terminated strings.
+pub(crate) unsafe fn set_debug_logging(
+    inner: &mut Inner,
+    name: &CStr,
+    call: &str,
+    logging_on: bool,
+    nCategories: usize,
+    categories: *const *const c_char,
+) -> Result<fmi2Status, String> {
+    if nCategories > 0 && categories.is_null() {
+        return Err(format!(
+            "categories is NULL but nCategories = {nCategories}"
+        ));
+    }
+    inner.logging_on = logging_on;
+    if nCategories == 0 {
+        inner.categories = [true; 3];
+        return Ok(fmi2OK);
+    }
+    let mut enabled = [false; 3];
+    let mut status = fmi2OK;
+    for k in 0..nCategories {
+        let category = c_str(*categories.add(k), "a category")?;
+        match category {
+            "logStatusError" => enabled[0] = true,
+            "logStatusWarning" => enabled[1] = true,
+            "logFmiCall" => enabled[2] = true,
+            "logAll" => enabled = [true; 3],
+            other => {
+                status = fmi2Warning;
+                send_log(
+                    &inner.host,
+                    name,
+                    fmi2Warning,
+                    Category::Warning,
+                    &format!(
+                        "{call}: unknown log category `{other}` (offered: {})",
+                        LOG_CATEGORIES.map(|c| c.0).join(", ")
+                    ),
+                );
             }
         }
-        inner.categories = enabled;
-        Ok(status)
-    })
+    }
+    inner.categories = enabled;
+    Ok(status)
 }
 
 /// Record the start time (the tolerance is not used: the model integrates with its own fixed
@@ -772,28 +888,32 @@ pub unsafe extern "C" fn fmi2ExitInitializationMode(c: fmi2Component) -> fmi2Sta
         c,
         "fmi2ExitInitializationMode",
         &[S::InitializationMode],
-        |inner, name| {
-            inner
-                .model
-                .initialise(&inner.inputs, &inner.setpoints)
-                .map_err(|e| format!("no steady state at the start: {e}"))?;
-            inner.state = S::StepComplete;
-            if inner.outside_envelope() {
-                inner.latched_out_of_envelope = true;
-                inner.log(
-                    name,
-                    fmi2Warning,
-                    Category::Warning,
-                    &format!(
-                        "initial inputs |v| = {:.4} pu, f = {:.4} pu lie outside the model's envelope",
-                        inner.inputs.voltage().norm(),
-                        inner.inputs.f_grid
-                    ),
-                );
-            }
-            Ok(fmi2OK)
-        },
+        |inner, name| exit_initialisation(inner, name).map(|()| fmi2OK),
     )
+}
+
+/// Initialise the model at the steady state of the current inputs and setpoints and enter
+/// the stepping state.
+pub(crate) fn exit_initialisation(inner: &mut Inner, name: &CStr) -> Result<(), String> {
+    inner
+        .model
+        .initialise(&inner.inputs, &inner.setpoints)
+        .map_err(|e| format!("no steady state at the start: {e}"))?;
+    inner.state = S::StepComplete;
+    if inner.outside_envelope() {
+        inner.latched_out_of_envelope = true;
+        inner.log(
+            name,
+            fmi2Warning,
+            Category::Warning,
+            &format!(
+                "initial inputs |v| = {:.4} pu, f = {:.4} pu lie outside the model's envelope",
+                inner.inputs.voltage().norm(),
+                inner.inputs.f_grid
+            ),
+        );
+    }
+    Ok(())
 }
 
 /// # Safety
@@ -824,7 +944,7 @@ pub unsafe extern "C" fn fmi2Reset(c: fmi2Component) -> fmi2Status {
 }
 
 /// Check the common array arguments of a get/set call.
-fn arrays_ok<T, U>(nvr: usize, vr: *const T, value: *const U) -> Result<(), String> {
+pub(crate) fn arrays_ok<T, U>(nvr: usize, vr: *const T, value: *const U) -> Result<(), String> {
     if nvr > 0 && vr.is_null() {
         return Err(format!("vr is NULL but nvr = {nvr}"));
     }
@@ -844,36 +964,49 @@ pub unsafe extern "C" fn fmi2GetReal(
     value: *mut fmi2Real,
 ) -> fmi2Status {
     entry(c, "fmi2GetReal", GETTABLE, |inner, _| {
-        arrays_ok(nvr, vr, value)?;
-        let mut outputs = None;
-        for k in 0..nvr {
-            let r = *vr.add(k);
-            let v = match r {
-                vr::V_RE => inner.inputs.v_re,
-                vr::V_IM => inner.inputs.v_im,
-                vr::F_GRID => inner.inputs.f_grid,
-                vr::P_REF => inner.setpoints.p_ref,
-                vr::Q_REF => inner.setpoints.q_ref,
-                vr::S_BASE_MVA => inner.file.bases.s_base_mva,
-                vr::V_BASE_KV => inner.file.bases.v_base_kv,
-                vr::I_RE | vr::I_IM | vr::P | vr::Q => {
-                    if outputs.is_none() {
-                        outputs = Some(inner.outputs()?);
-                    }
-                    let o = outputs.expect("just set");
-                    match r {
-                        vr::I_RE => o.i_re,
-                        vr::I_IM => o.i_im,
-                        vr::P => o.p,
-                        _ => o.q,
-                    }
-                }
-                other => return Err(format!("value reference {other} is not a Real variable")),
-            };
-            *value.add(k) = v;
-        }
-        Ok(fmi2OK)
+        get_reals(inner, vr, nvr, value).map(|()| fmi2OK)
     })
+}
+
+/// Read real variables (FMI 2.0 Real, FMI 3.0 Float64).
+///
+/// # Safety
+/// `vr` and `value` hold `nvr` elements.
+pub(crate) unsafe fn get_reals(
+    inner: &Inner,
+    vr: *const fmi2ValueReference,
+    nvr: usize,
+    value: *mut f64,
+) -> Result<(), String> {
+    arrays_ok(nvr, vr, value)?;
+    let mut outputs = None;
+    for k in 0..nvr {
+        let r = *vr.add(k);
+        let v = match r {
+            vr::V_RE => inner.inputs.v_re,
+            vr::V_IM => inner.inputs.v_im,
+            vr::F_GRID => inner.inputs.f_grid,
+            vr::P_REF => inner.setpoints.p_ref,
+            vr::Q_REF => inner.setpoints.q_ref,
+            vr::S_BASE_MVA => inner.file.bases.s_base_mva,
+            vr::V_BASE_KV => inner.file.bases.v_base_kv,
+            vr::I_RE | vr::I_IM | vr::P | vr::Q => {
+                if outputs.is_none() {
+                    outputs = Some(inner.outputs()?);
+                }
+                let o = outputs.expect("just set");
+                match r {
+                    vr::I_RE => o.i_re,
+                    vr::I_IM => o.i_im,
+                    vr::P => o.p,
+                    _ => o.q,
+                }
+            }
+            other => return Err(format!("value reference {other} is not a Real variable")),
+        };
+        *value.add(k) = v;
+    }
+    Ok(())
 }
 
 /// There are no Integer variables: any value reference is an error.
@@ -893,7 +1026,7 @@ pub unsafe extern "C" fn fmi2GetInteger(
     })
 }
 
-unsafe fn no_variables(
+pub(crate) unsafe fn no_variables(
     nvr: usize,
     vr: *const fmi2ValueReference,
     ty: &str,
@@ -924,17 +1057,32 @@ pub unsafe extern "C" fn fmi2GetBoolean(
 ) -> fmi2Status {
     entry(c, "fmi2GetBoolean", GETTABLE, |inner, _| {
         arrays_ok(nvr, vr, value)?;
-        for k in 0..nvr {
-            match *vr.add(k) {
-                vr::OUT_OF_ENVELOPE => {
-                    let out = inner.latched_out_of_envelope || inner.outside_envelope();
-                    *value.add(k) = if out { fmi2True } else { fmi2False };
-                }
-                other => return Err(format!("value reference {other} is not a Boolean variable")),
-            }
-        }
-        Ok(fmi2OK)
+        get_booleans(inner, vr, nvr, |k, b| {
+            *value.add(k) = if b { fmi2True } else { fmi2False }
+        })
+        .map(|()| fmi2OK)
     })
+}
+
+/// Read Boolean variables; `put(k, value)` stores the k-th.
+///
+/// # Safety
+/// `vr` holds `nvr` elements.
+pub(crate) unsafe fn get_booleans(
+    inner: &Inner,
+    vr: *const fmi2ValueReference,
+    nvr: usize,
+    mut put: impl FnMut(usize, bool),
+) -> Result<(), String> {
+    for k in 0..nvr {
+        match *vr.add(k) {
+            vr::OUT_OF_ENVELOPE => {
+                put(k, inner.latched_out_of_envelope || inner.outside_envelope());
+            }
+            other => return Err(format!("value reference {other} is not a Boolean variable")),
+        }
+    }
+    Ok(())
 }
 
 /// There are no String variables.
@@ -967,60 +1115,74 @@ pub unsafe extern "C" fn fmi2SetReal(
     value: *const fmi2Real,
 ) -> fmi2Status {
     entry(c, "fmi2SetReal", SETTABLE, |inner, _| {
-        arrays_ok(nvr, vr, value)?;
-        let mut inputs = inner.inputs;
-        let mut setpoints = inner.setpoints;
-        for k in 0..nvr {
-            let r = *vr.add(k);
-            let v = *value.add(k);
-            let var = variables::find(VarType::Real, r)
-                .ok_or_else(|| format!("value reference {r} is not a Real variable"))?;
-            if !v.is_finite() {
-                return Err(format!("{} = {v}: expected a finite number", var.name));
-            }
-            match var.causality {
-                Causality::Output => {
-                    return Err(format!("{} is an output: it cannot be set", var.name))
-                }
-                Causality::Parameter if inner.state == S::StepComplete => {
-                    return Err(format!(
-                        "{} is a fixed parameter: it cannot change after initialisation",
-                        var.name
-                    ))
-                }
-                _ => {}
-            }
-            match r {
-                vr::V_RE => inputs.v_re = v,
-                vr::V_IM => inputs.v_im = v,
-                vr::F_GRID => {
-                    if v <= 0.0 {
-                        return Err(format!("f_grid = {v}: expected a frequency > 0 pu"));
-                    }
-                    inputs.f_grid = v
-                }
-                vr::P_REF => setpoints.p_ref = v,
-                vr::Q_REF => setpoints.q_ref = v,
-                vr::S_BASE_MVA | vr::V_BASE_KV => {
-                    let base = if r == vr::S_BASE_MVA {
-                        inner.file.bases.s_base_mva
-                    } else {
-                        inner.file.bases.v_base_kv
-                    };
-                    if (v - base).abs() > 1e-12 * base.abs() {
-                        return Err(format!(
-                            "{} = {v}: the model is per unit on {} = {base}, fixed by the model file",
-                            var.name, var.name
-                        ));
-                    }
-                }
-                _ => unreachable!("every Real variable is handled above"),
-            }
-        }
-        inner.inputs = inputs;
-        inner.setpoints = setpoints;
-        Ok(fmi2OK)
+        set_reals(inner, vr, nvr, value).map(|()| fmi2OK)
     })
+}
+
+/// Set real inputs and parameters (FMI 2.0 Real, FMI 3.0 Float64); all values are checked
+/// before any is applied.
+///
+/// # Safety
+/// `vr` and `value` hold `nvr` elements.
+pub(crate) unsafe fn set_reals(
+    inner: &mut Inner,
+    vr: *const fmi2ValueReference,
+    nvr: usize,
+    value: *const f64,
+) -> Result<(), String> {
+    arrays_ok(nvr, vr, value)?;
+    let mut inputs = inner.inputs;
+    let mut setpoints = inner.setpoints;
+    for k in 0..nvr {
+        let r = *vr.add(k);
+        let v = *value.add(k);
+        let var = variables::find(VarType::Real, r)
+            .ok_or_else(|| format!("value reference {r} is not a Real variable"))?;
+        if !v.is_finite() {
+            return Err(format!("{} = {v}: expected a finite number", var.name));
+        }
+        match var.causality {
+            Causality::Output => {
+                return Err(format!("{} is an output: it cannot be set", var.name))
+            }
+            Causality::Parameter if inner.state == S::StepComplete => {
+                return Err(format!(
+                    "{} is a fixed parameter: it cannot change after initialisation",
+                    var.name
+                ))
+            }
+            _ => {}
+        }
+        match r {
+            vr::V_RE => inputs.v_re = v,
+            vr::V_IM => inputs.v_im = v,
+            vr::F_GRID => {
+                if v <= 0.0 {
+                    return Err(format!("f_grid = {v}: expected a frequency > 0 pu"));
+                }
+                inputs.f_grid = v
+            }
+            vr::P_REF => setpoints.p_ref = v,
+            vr::Q_REF => setpoints.q_ref = v,
+            vr::S_BASE_MVA | vr::V_BASE_KV => {
+                let base = if r == vr::S_BASE_MVA {
+                    inner.file.bases.s_base_mva
+                } else {
+                    inner.file.bases.v_base_kv
+                };
+                if (v - base).abs() > 1e-12 * base.abs() {
+                    return Err(format!(
+                        "{} = {v}: the model is per unit on {} = {base}, fixed by the model file",
+                        var.name, var.name
+                    ));
+                }
+            }
+            _ => unreachable!("every Real variable is handled above"),
+        }
+    }
+    inner.inputs = inputs;
+    inner.setpoints = setpoints;
+    Ok(())
 }
 
 /// There are no Integer variables.
@@ -1053,15 +1215,26 @@ pub unsafe extern "C" fn fmi2SetBoolean(
 ) -> fmi2Status {
     entry(c, "fmi2SetBoolean", SETTABLE, |_, _| {
         arrays_ok(nvr, vr, value)?;
-        if nvr > 0 {
-            let r = *vr;
-            return Err(match variables::find(VarType::Boolean, r) {
-                Some(var) => format!("{} is an output: it cannot be set", var.name),
-                None => format!("value reference {r} is not a Boolean variable"),
-            });
-        }
-        Ok(fmi2OK)
+        refuse_boolean_set(vr, nvr).map(|()| fmi2OK)
     })
+}
+
+/// The only Boolean variable is an output: setting any is an error.
+///
+/// # Safety
+/// `vr` holds `nvr` elements.
+pub(crate) unsafe fn refuse_boolean_set(
+    vr: *const fmi2ValueReference,
+    nvr: usize,
+) -> Result<(), String> {
+    if nvr > 0 {
+        let r = *vr;
+        return Err(match variables::find(VarType::Boolean, r) {
+            Some(var) => format!("{} is an output: it cannot be set", var.name),
+            None => format!("value reference {r} is not a Boolean variable"),
+        });
+    }
+    Ok(())
 }
 
 /// There are no String variables.
@@ -1106,20 +1279,28 @@ pub unsafe extern "C" fn fmi2GetFMUstate(
     FMUstate: *mut fmi2FMUstate,
 ) -> fmi2Status {
     entry(c, "fmi2GetFMUstate", ANY, |inner, _| {
-        if FMUstate.is_null() {
-            return Err("FMUstate is NULL".into());
-        }
-        let snapshot = inner.snapshot();
-        if (*FMUstate).is_null() {
-            *FMUstate = Box::into_raw(Box::new(SnapshotBox {
-                magic: SNAPSHOT_MAGIC,
-                snapshot,
-            })) as fmi2FMUstate;
-        } else {
-            snapshot_at(*FMUstate)?.snapshot = snapshot;
-        }
-        Ok(fmi2OK)
+        get_state(inner, FMUstate).map(|()| fmi2OK)
     })
+}
+
+/// Copy the instance's state into `*FMUstate` (allocated when NULL).
+///
+/// # Safety
+/// `FMUstate` points to NULL or to a state of this FMU.
+pub(crate) unsafe fn get_state(inner: &Inner, FMUstate: *mut *mut c_void) -> Result<(), String> {
+    if FMUstate.is_null() {
+        return Err("FMUstate is NULL".into());
+    }
+    let snapshot = inner.snapshot();
+    if (*FMUstate).is_null() {
+        *FMUstate = Box::into_raw(Box::new(SnapshotBox {
+            magic: SNAPSHOT_MAGIC,
+            snapshot,
+        })) as fmi2FMUstate;
+    } else {
+        snapshot_at(*FMUstate)?.snapshot = snapshot;
+    }
+    Ok(())
 }
 
 /// Make a copied state the instance's state again.
@@ -1129,10 +1310,18 @@ pub unsafe extern "C" fn fmi2GetFMUstate(
 #[no_mangle]
 pub unsafe extern "C" fn fmi2SetFMUstate(c: fmi2Component, FMUstate: fmi2FMUstate) -> fmi2Status {
     entry(c, "fmi2SetFMUstate", ANY, |inner, _| {
-        let b = snapshot_at(FMUstate)?;
-        inner.restore(&b.snapshot)?;
-        Ok(fmi2OK)
+        set_state(inner, FMUstate).map(|()| fmi2OK)
     })
+}
+
+/// Make a copied state the instance's state again.
+///
+/// # Safety
+/// `FMUstate` is a state of this FMU.
+pub(crate) unsafe fn set_state(inner: &mut Inner, FMUstate: *mut c_void) -> Result<(), String> {
+    let b = snapshot_at(FMUstate)?;
+    inner.restore(&b.snapshot)?;
+    Ok(())
 }
 
 /// Free a copied state and set `*FMUstate` to NULL (NULL is ignored).
@@ -1145,15 +1334,23 @@ pub unsafe extern "C" fn fmi2FreeFMUstate(
     FMUstate: *mut fmi2FMUstate,
 ) -> fmi2Status {
     entry(c, "fmi2FreeFMUstate", ANY, |_, _| {
-        if FMUstate.is_null() || (*FMUstate).is_null() {
-            return Ok(fmi2OK);
-        }
-        let b = snapshot_at(*FMUstate)?;
-        b.magic = 0;
-        drop(Box::from_raw(b as *mut SnapshotBox));
-        *FMUstate = std::ptr::null_mut();
-        Ok(fmi2OK)
+        free_state(FMUstate).map(|()| fmi2OK)
     })
+}
+
+/// Free a copied state and set `*FMUstate` to NULL.
+///
+/// # Safety
+/// `FMUstate` is NULL or points to NULL or to a state of this FMU.
+pub(crate) unsafe fn free_state(FMUstate: *mut *mut c_void) -> Result<(), String> {
+    if FMUstate.is_null() || (*FMUstate).is_null() {
+        return Ok(());
+    }
+    let b = snapshot_at(*FMUstate)?;
+    b.magic = 0;
+    drop(Box::from_raw(b as *mut SnapshotBox));
+    *FMUstate = std::ptr::null_mut();
+    Ok(())
 }
 
 fn serialise(snapshot: &Snapshot) -> Vec<u8> {
@@ -1169,12 +1366,18 @@ pub unsafe extern "C" fn fmi2SerializedFMUstateSize(
     size: *mut usize,
 ) -> fmi2Status {
     entry(c, "fmi2SerializedFMUstateSize", ANY, |_, _| {
-        if size.is_null() {
-            return Err("size is NULL".into());
-        }
-        *size = serialise(&snapshot_at(FMUstate)?.snapshot).len();
-        Ok(fmi2OK)
+        state_size(FMUstate, size).map(|()| fmi2OK)
     })
+}
+
+/// # Safety
+/// `FMUstate` is a state of this FMU; `size` is writable.
+pub(crate) unsafe fn state_size(FMUstate: *mut c_void, size: *mut usize) -> Result<(), String> {
+    if size.is_null() {
+        return Err("size is NULL".into());
+    }
+    *size = serialise(&snapshot_at(FMUstate)?.snapshot).len();
+    Ok(())
 }
 
 /// # Safety
@@ -1188,25 +1391,31 @@ pub unsafe extern "C" fn fmi2SerializeFMUstate(
     size: usize,
 ) -> fmi2Status {
     entry(c, "fmi2SerializeFMUstate", ANY, |_, _| {
-        let bytes = serialise(&snapshot_at(FMUstate)?.snapshot);
-        if serializedState.is_null() {
-            return Err("serializedState is NULL".into());
-        }
-        if size < bytes.len() {
-            return Err(format!(
-                "size = {size} bytes is too small: the state needs {} (ask fmi2SerializedFMUstateSize)",
-                bytes.len()
-            ));
-        }
-        std::ptr::copy_nonoverlapping(bytes.as_ptr(), serializedState as *mut u8, bytes.len());
-        // the rest of a larger buffer is blank, so the JSON reader stops at the document's end
-        std::ptr::write_bytes(
-            (serializedState as *mut u8).add(bytes.len()),
-            b' ',
-            size - bytes.len(),
-        );
-        Ok(fmi2OK)
+        serialize_state(FMUstate, serializedState as *mut u8, size).map(|()| fmi2OK)
     })
+}
+
+/// # Safety
+/// `FMUstate` is a state of this FMU; `serializedState` holds `size` bytes.
+pub(crate) unsafe fn serialize_state(
+    FMUstate: *mut c_void,
+    serializedState: *mut u8,
+    size: usize,
+) -> Result<(), String> {
+    let bytes = serialise(&snapshot_at(FMUstate)?.snapshot);
+    if serializedState.is_null() {
+        return Err("serializedState is NULL".into());
+    }
+    if size < bytes.len() {
+        return Err(format!(
+            "size = {size} bytes is too small: the state needs {} (ask for the serialized state's size)",
+            bytes.len()
+        ));
+    }
+    std::ptr::copy_nonoverlapping(bytes.as_ptr(), serializedState, bytes.len());
+    // the rest of a larger buffer is blank, so the JSON reader stops at the document's end
+    std::ptr::write_bytes(serializedState.add(bytes.len()), b' ', size - bytes.len());
+    Ok(())
 }
 
 /// Read a serialised state into a new `*FMUstate`.
@@ -1221,35 +1430,48 @@ pub unsafe extern "C" fn fmi2DeSerializeFMUstate(
     FMUstate: *mut fmi2FMUstate,
 ) -> fmi2Status {
     entry(c, "fmi2DeSerializeFMUstate", ANY, |inner, _| {
-        if serializedState.is_null() || FMUstate.is_null() {
-            return Err("serializedState or FMUstate is NULL".into());
-        }
-        let bytes = std::slice::from_raw_parts(serializedState as *const u8, size);
-        let snapshot: Snapshot = serde_json::from_slice(bytes)
-            .map_err(|e| format!("not a serialised state of this FMU: {e}"))?;
-        if snapshot.format != FMU_STATE_FORMAT {
-            return Err(format!(
-                "serialised state format `{}`: expected `{FMU_STATE_FORMAT}`",
-                snapshot.format
-            ));
-        }
-        if snapshot.guid != inner.guid {
-            return Err(format!(
-                "serialised state of GUID {}: this instance has GUID {}",
-                snapshot.guid, inner.guid
-            ));
-        }
-        // the model must accept it now, not when it is set
-        let mut probe = inner.model.clone();
-        probe
-            .restore_state(&snapshot.model)
-            .map_err(|e| e.to_string())?;
-        *FMUstate = Box::into_raw(Box::new(SnapshotBox {
-            magic: SNAPSHOT_MAGIC,
-            snapshot,
-        })) as fmi2FMUstate;
-        Ok(fmi2OK)
+        deserialize_state(inner, serializedState as *const u8, size, FMUstate).map(|()| fmi2OK)
     })
+}
+
+/// Read a serialised state into a new `*FMUstate`.
+///
+/// # Safety
+/// `serializedState` holds `size` bytes; `FMUstate` is writable.
+pub(crate) unsafe fn deserialize_state(
+    inner: &Inner,
+    serializedState: *const u8,
+    size: usize,
+    FMUstate: *mut *mut c_void,
+) -> Result<(), String> {
+    if serializedState.is_null() || FMUstate.is_null() {
+        return Err("serializedState or FMUstate is NULL".into());
+    }
+    let bytes = std::slice::from_raw_parts(serializedState, size);
+    let snapshot: Snapshot = serde_json::from_slice(bytes)
+        .map_err(|e| format!("not a serialised state of this FMU: {e}"))?;
+    if snapshot.format != FMU_STATE_FORMAT {
+        return Err(format!(
+            "serialised state format `{}`: expected `{FMU_STATE_FORMAT}`",
+            snapshot.format
+        ));
+    }
+    if snapshot.guid != inner.guid {
+        return Err(format!(
+            "serialised state of GUID {}: this instance has GUID {}",
+            snapshot.guid, inner.guid
+        ));
+    }
+    // the model must accept it now, not when it is set
+    let mut probe = inner.model.clone();
+    probe
+        .restore_state(&snapshot.model)
+        .map_err(|e| e.to_string())?;
+    *FMUstate = Box::into_raw(Box::new(SnapshotBox {
+        magic: SNAPSHOT_MAGIC,
+        snapshot,
+    })) as fmi2FMUstate;
+    Ok(())
 }
 
 /// Not offered (`providesDirectionalDerivative="false"`).
@@ -1328,50 +1550,61 @@ pub unsafe extern "C" fn fmi2DoStep(
 ) -> fmi2Status {
     let (t, h) = (currentCommunicationPoint, communicationStepSize);
     entry(c, "fmi2DoStep", &[S::StepComplete], |inner, name| {
-        if !(h.is_finite() && h > 0.0) {
-            return Err(format!(
-                "communicationStepSize = {h}: expected a step > 0 s (a zero-length or negative step is not a step)"
-            ));
-        }
-        if !t.is_finite() {
-            return Err(format!(
-                "currentCommunicationPoint = {t}: expected a finite time"
-            ));
-        }
-        // the host's time may differ from ours by the rounding of t + h
-        let tol = 1e-9 * t.abs().max(1.0);
-        if (t - inner.time).abs() > tol {
-            return Err(format!(
-                "currentCommunicationPoint = {t} s but the FMU is at t = {} s (steps must follow each other)",
-                inner.time
-            ));
-        }
-        if !inner.latched_out_of_envelope && inner.outside_envelope() {
-            inner.latched_out_of_envelope = true;
-            inner.log(
-                name,
-                fmi2Warning,
-                Category::Warning,
-                &format!(
-                    "fmi2DoStep: at t = {t} s the inputs |v| = {:.4} pu, f = {:.4} pu left the model's envelope \
-                     (|v| in [{}, {}] pu, f in [{}, {}] pu): out_of_envelope is raised",
-                    inner.inputs.voltage().norm(),
-                    inner.inputs.f_grid,
-                    inner.file.envelope.u_min,
-                    inner.file.envelope.u_max,
-                    inner.file.envelope.f_min,
-                    inner.file.envelope.f_max
-                ),
-            );
-        }
-        let inputs = inner.inputs;
-        inner
-            .model
-            .do_step(t, h, &inputs)
-            .map_err(|e| e.to_string())?;
-        inner.time = t + h;
-        Ok(fmi2OK)
+        do_step(inner, name, "fmi2DoStep", t, h).map(|()| fmi2OK)
     })
+}
+
+/// Integrate from `t` over `h` with the inputs held; raises the envelope flag on the way.
+pub(crate) fn do_step(
+    inner: &mut Inner,
+    name: &CStr,
+    call: &str,
+    t: f64,
+    h: f64,
+) -> Result<(), String> {
+    if !(h.is_finite() && h > 0.0) {
+        return Err(format!(
+            "communicationStepSize = {h}: expected a step > 0 s (a zero-length or negative step is not a step)"
+        ));
+    }
+    if !t.is_finite() {
+        return Err(format!(
+            "currentCommunicationPoint = {t}: expected a finite time"
+        ));
+    }
+    // the host's time may differ from ours by the rounding of t + h
+    let tol = 1e-9 * t.abs().max(1.0);
+    if (t - inner.time).abs() > tol {
+        return Err(format!(
+            "currentCommunicationPoint = {t} s but the FMU is at t = {} s (steps must follow each other)",
+            inner.time
+        ));
+    }
+    if !inner.latched_out_of_envelope && inner.outside_envelope() {
+        inner.latched_out_of_envelope = true;
+        inner.log(
+            name,
+            fmi2Warning,
+            Category::Warning,
+            &format!(
+                "{call}: at t = {t} s the inputs |v| = {:.4} pu, f = {:.4} pu left the model's envelope \
+                 (|v| in [{}, {}] pu, f in [{}, {}] pu): out_of_envelope is raised",
+                inner.inputs.voltage().norm(),
+                inner.inputs.f_grid,
+                inner.file.envelope.u_min,
+                inner.file.envelope.u_max,
+                inner.file.envelope.f_min,
+                inner.file.envelope.f_max
+            ),
+        );
+    }
+    let inputs = inner.inputs;
+    inner
+        .model
+        .do_step(t, h, &inputs)
+        .map_err(|e| e.to_string())?;
+    inner.time = t + h;
+    Ok(())
 }
 
 /// Steps are synchronous: there is never a step to cancel.
@@ -1481,7 +1714,7 @@ pub unsafe extern "C" fn fmi2GetStringStatus(
 }
 
 #[cfg(test)]
-mod tests {
+pub(crate) mod tests {
     use super::*;
     use std::path::Path;
 
@@ -1512,38 +1745,43 @@ mod tests {
         }
     }
 
-    /// The C header of this boundary, generated by cbindgen from this file.
-    fn generated_header() -> String {
+    /// The C header of one boundary, generated by cbindgen from `src/<module>.rs`.
+    pub(crate) fn generated_header(module: &str, title: &str) -> String {
         let root = Path::new(env!("CARGO_MANIFEST_DIR"));
         let mut out = Vec::new();
         let config = cbindgen::Config {
             usize_is_size_t: true,
             ..Default::default()
         };
-        cbindgen::Builder::new()
+        let mut builder = cbindgen::Builder::new()
             .with_config(config)
-            .with_src(root.join("src/fmi2.rs"))
+            .with_src(root.join(format!("src/{module}.rs")))
             .with_language(cbindgen::Language::C)
-            .with_include_guard("UNDERSTUDY_FMI2_H")
-            .with_header(
-                "/* The FMI 2.0 Co-Simulation entry points of understudy-runtime.\n * \
-                 Generated by cbindgen from fmu-template/src/fmi2.rs: do not edit; run\n * \
-                 UNDERSTUDY_BLESS_HEADER=1 cargo test -p understudy-runtime --lib header to refresh. */",
-            )
+            .with_include_guard(format!("UNDERSTUDY_{}_H", module.to_uppercase()))
+            .with_header(format!(
+                "/* The {title} entry points of understudy-runtime.\n * \
+                 Generated by cbindgen from fmu-template/src/{module}.rs: do not edit; run\n * \
+                 UNDERSTUDY_BLESS_HEADER=1 cargo test -p understudy-runtime --lib header to refresh. */"
+            ))
             .with_no_includes()
             .with_sys_include("stddef.h")
-            .with_sys_include("stdint.h")
+            .with_sys_include("stdint.h");
+        if module == "fmi3" {
+            builder = builder.with_sys_include("stdbool.h");
+        }
+        builder
             .with_documentation(false)
             .generate()
-            .expect("cbindgen reads src/fmi2.rs")
+            .unwrap_or_else(|e| panic!("cbindgen reads src/{module}.rs: {e}"))
             .write(&mut out);
         String::from_utf8(out).expect("cbindgen writes UTF-8")
     }
 
-    #[test]
-    fn committed_header_is_fresh() {
-        let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("include/understudy_fmi2.h");
-        let fresh = generated_header();
+    /// Compare (or, with `UNDERSTUDY_BLESS_HEADER`, rewrite) `include/understudy_<module>.h`.
+    pub(crate) fn check_header(module: &str, title: &str, functions: &[&str]) {
+        let path =
+            Path::new(env!("CARGO_MANIFEST_DIR")).join(format!("include/understudy_{module}.h"));
+        let fresh = generated_header(module, title);
         if std::env::var_os("UNDERSTUDY_BLESS_HEADER").is_some() {
             std::fs::create_dir_all(path.parent().unwrap()).unwrap();
             std::fs::write(&path, &fresh).unwrap();
@@ -1554,12 +1792,17 @@ mod tests {
             "{} is stale: regenerate it with UNDERSTUDY_BLESS_HEADER=1 cargo test -p understudy-runtime --lib header",
             path.display()
         );
-        for f in EXPORTED_FUNCTIONS {
+        for f in functions {
             assert!(
                 fresh.contains(&format!("{f}(")),
                 "{f} missing from the header"
             );
         }
+    }
+
+    #[test]
+    fn committed_header_is_fresh() {
+        check_header("fmi2", "FMI 2.0 Co-Simulation", &EXPORTED_FUNCTIONS);
     }
 
     #[test]

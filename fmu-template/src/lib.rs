@@ -7,6 +7,7 @@
 pub mod block;
 pub mod cosim;
 pub mod fmi2;
+pub mod fmi3;
 pub mod ode;
 pub mod unit;
 pub mod variables;

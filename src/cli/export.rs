@@ -11,11 +11,11 @@ pub fn run(model: &Path, out: &Path, fmi: u8, platforms: &str) -> Result<i32, Er
         other => return Err(Error::bad_input("--fmi", other.to_string(), "2 or 3")),
     };
     for p in platforms.split(',').map(str::trim) {
-        if p != "linux64" {
+        if p != "linux64" && p != "x86_64-linux" {
             return Err(Error::bad_input(
                 "--platforms",
                 p,
-                "linux64 (other platforms are not available yet)",
+                "linux64 or x86_64-linux (other platforms are not available yet)",
             ));
         }
     }

@@ -53,10 +53,10 @@ pub enum Command {
         /// The FMU to write.
         #[arg(long)]
         out: PathBuf,
-        /// FMI version: 2 (3 is not available yet).
+        /// FMI version: 2 (FMI 2.0 Co-Simulation) or 3 (FMI 3.0 Co-Simulation).
         #[arg(long, default_value = "2")]
         fmi: u8,
-        /// Target platforms (comma-separated); only linux64 is available.
+        /// Target platforms (comma-separated); only linux64 (FMI 3.0: x86_64-linux) is available.
         #[arg(long, default_value = "linux64")]
         platforms: String,
     },

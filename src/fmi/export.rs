@@ -1,8 +1,9 @@
-//! Write a model file as an FMI 2.0 Co-Simulation FMU (a zip archive):
+//! Write a model file as an FMI 2.0 or FMI 3.0 Co-Simulation FMU (a zip archive):
 //!
 //! ```text
 //! modelDescription.xml
-//! binaries/linux64/<modelIdentifier>.so     the understudy-runtime cdylib
+//! binaries/linux64/<modelIdentifier>.so     the understudy-runtime cdylib (FMI 2.0;
+//! binaries/x86_64-linux/<modelIdentifier>.so  FMI 3.0: the same library serves both)
 //! resources/model.json                      the model file (its bytes fix the GUID)
 //! documentation/index.html                  what the FMU is and how far to trust it
 //! ```
@@ -28,6 +29,7 @@ use std::path::{Path, PathBuf};
 use thiserror::Error;
 use understudy_runtime::cosim::{CoSimError, ModelFile, MODEL_FORMAT};
 use understudy_runtime::fmi2::{CAPABILITIES, LOG_CATEGORIES};
+use understudy_runtime::fmi3::CAPABILITIES as CAPABILITIES_3;
 use understudy_runtime::variables::{Causality, VarType, Variable, VARIABLES};
 
 /// FMI version of an export.
@@ -52,10 +54,6 @@ pub struct ExportReport {
 pub enum ExportError {
     #[error("model file is invalid: {0}")]
     Model(#[from] CoSimError),
-    #[error(
-        "FMI {0} export is not implemented yet: only FMI 2.0 Co-Simulation is available (--fmi 2)"
-    )]
-    UnsupportedVersion(&'static str),
     #[error(
         "the understudy runtime library was not found; looked at: {}. {hint}",
         looked.iter().map(|p| p.display().to_string()).collect::<Vec<_>>().join(", ")
@@ -83,14 +81,12 @@ pub fn export_fmu(
     out: &Path,
     fmi_version: FmiVersion,
 ) -> Result<ExportReport, ExportError> {
-    if fmi_version == FmiVersion::V3 {
-        return Err(ExportError::UnsupportedVersion("3.0"));
-    }
     if !(cfg!(target_os = "linux") && cfg!(target_pointer_width = "64")) {
         return Err(ExportError::Platform(std::env::consts::OS));
     }
     model.validate()?;
     let runtime = find_runtime_library()?;
+    check_runtime_serves(&runtime, fmi_version)?;
     let library = std::fs::read(&runtime).map_err(|source| ExportError::Io {
         path: runtime.clone(),
         source,
@@ -98,8 +94,17 @@ pub fn export_fmu(
     let model_json = model.to_json();
     let guid = ModelFile::guid_of(model_json.as_bytes());
     let model_identifier = model_identifier(&model.name);
-    let description = model_description(model, &guid, &model_identifier);
-    let documentation = documentation(model, &guid);
+    let (description, platform) = match fmi_version {
+        FmiVersion::V2 => (
+            model_description(model, &guid, &model_identifier),
+            "linux64",
+        ),
+        FmiVersion::V3 => (
+            model_description_v3(model, &guid, &model_identifier),
+            "x86_64-linux",
+        ),
+    };
+    let documentation = documentation(model, &guid, fmi_version);
 
     let mut zip = zip::ZipWriter::new(Cursor::new(Vec::new()));
     let deflated = zip::write::SimpleFileOptions::default()
@@ -108,7 +113,7 @@ pub fn export_fmu(
     let entries: [(String, &[u8], u32); 4] = [
         ("modelDescription.xml".into(), description.as_bytes(), 0o644),
         (
-            format!("binaries/linux64/{model_identifier}.so"),
+            format!("binaries/{platform}/{model_identifier}.so"),
             &library,
             0o755,
         ),
@@ -203,6 +208,25 @@ pub fn find_runtime_library() -> Result<PathBuf, ExportError> {
     }
 }
 
+/// A runtime library must carry the entry points of the FMI version asked for.
+fn check_runtime_serves(path: &Path, version: FmiVersion) -> Result<(), ExportError> {
+    let (symbol, name) = match version {
+        FmiVersion::V2 => (&b"fmi2DoStep"[..], "2.0"),
+        FmiVersion::V3 => (&b"fmi3DoStep"[..], "3.0"),
+    };
+    let bytes = std::fs::read(path).map_err(|source| ExportError::Io {
+        path: path.to_path_buf(),
+        source,
+    })?;
+    if !bytes.windows(symbol.len()).any(|w| w == symbol) {
+        return Err(ExportError::BadRuntime {
+            path: path.to_path_buf(),
+            message: format!("it exports no FMI {name} functions (built from an older version?)"),
+        });
+    }
+    Ok(())
+}
+
 fn check_runtime(path: &Path) -> Result<(), ExportError> {
     let bytes = std::fs::read(path).map_err(|source| ExportError::Io {
         path: path.to_path_buf(),
@@ -268,31 +292,8 @@ fn start_value(model: &ModelFile, v: &Variable) -> Option<f64> {
     })
 }
 
-/// `modelDescription.xml` of `model` (FMI 2.0 Co-Simulation).
-pub fn model_description(model: &ModelFile, guid: &str, model_identifier: &str) -> String {
-    let mut w = Writer::new_with_indent(Vec::new(), b' ', 2);
-    // writing into a Vec cannot fail
-    let mut put = |e: Event| w.write_event(e).expect("writing XML into memory");
-    put(Event::Decl(BytesDecl::new("1.0", Some("UTF-8"), None)));
-    let generation_tool = format!("understudy {}", env!("CARGO_PKG_VERSION"));
-    put(Event::Start(
-        BytesStart::new("fmiModelDescription").with_attributes([
-            ("fmiVersion", "2.0"),
-            ("modelName", model.name.as_str()),
-            ("guid", guid),
-            ("description", model.description.as_str()),
-            ("generationTool", generation_tool.as_str()),
-            ("variableNamingConvention", "flat"),
-            ("numberOfEventIndicators", "0"),
-        ]),
-    ));
-    let mut cs = BytesStart::new("CoSimulation");
-    cs.push_attribute(("modelIdentifier", model_identifier));
-    for (name, value) in CAPABILITIES {
-        cs.push_attribute((name, value));
-    }
-    put(Event::Empty(cs));
-
+/// `UnitDefinitions` and `LogCategories`, alike in FMI 2.0 and 3.0.
+fn write_units_and_categories(put: &mut impl FnMut(Event)) {
     put(Event::Start(BytesStart::new("UnitDefinitions")));
     put(Event::Empty(
         BytesStart::new("Unit").with_attributes([("name", "pu")]),
@@ -323,6 +324,33 @@ pub fn model_description(model: &ModelFile, guid: &str, model_identifier: &str) 
         ])));
     }
     put(Event::End(BytesEnd::new("LogCategories")));
+}
+
+/// `modelDescription.xml` of `model` (FMI 2.0 Co-Simulation).
+pub fn model_description(model: &ModelFile, guid: &str, model_identifier: &str) -> String {
+    let mut w = Writer::new_with_indent(Vec::new(), b' ', 2);
+    // writing into a Vec cannot fail
+    let mut put = |e: Event| w.write_event(e).expect("writing XML into memory");
+    put(Event::Decl(BytesDecl::new("1.0", Some("UTF-8"), None)));
+    let generation_tool = format!("understudy {}", env!("CARGO_PKG_VERSION"));
+    put(Event::Start(
+        BytesStart::new("fmiModelDescription").with_attributes([
+            ("fmiVersion", "2.0"),
+            ("modelName", model.name.as_str()),
+            ("guid", guid),
+            ("description", model.description.as_str()),
+            ("generationTool", generation_tool.as_str()),
+            ("variableNamingConvention", "flat"),
+            ("numberOfEventIndicators", "0"),
+        ]),
+    ));
+    let mut cs = BytesStart::new("CoSimulation");
+    cs.push_attribute(("modelIdentifier", model_identifier));
+    for (name, value) in CAPABILITIES {
+        cs.push_attribute((name, value));
+    }
+    put(Event::Empty(cs));
+    write_units_and_categories(&mut put);
 
     let step = model.communication_step_s.to_string();
     put(Event::Empty(
@@ -390,8 +418,97 @@ fn escape_html(s: &str) -> String {
         .replace('"', "&quot;")
 }
 
+/// `modelDescription.xml` of `model` (FMI 3.0 Co-Simulation): typed variable elements,
+/// `ModelStructure` by value reference (FMI 3.0 standard, §2.4.7 and §2.4.8).
+pub fn model_description_v3(model: &ModelFile, token: &str, model_identifier: &str) -> String {
+    let mut w = Writer::new_with_indent(Vec::new(), b' ', 2);
+    // writing into a Vec cannot fail
+    let mut put = |e: Event| w.write_event(e).expect("writing XML into memory");
+    put(Event::Decl(BytesDecl::new("1.0", Some("UTF-8"), None)));
+    let generation_tool = format!("understudy {}", env!("CARGO_PKG_VERSION"));
+    put(Event::Start(
+        BytesStart::new("fmiModelDescription").with_attributes([
+            ("fmiVersion", "3.0"),
+            ("modelName", model.name.as_str()),
+            ("instantiationToken", token),
+            ("description", model.description.as_str()),
+            ("generationTool", generation_tool.as_str()),
+            ("variableNamingConvention", "flat"),
+        ]),
+    ));
+    let mut cs = BytesStart::new("CoSimulation");
+    cs.push_attribute(("modelIdentifier", model_identifier));
+    for (name, value) in CAPABILITIES_3 {
+        cs.push_attribute((name, value));
+    }
+    put(Event::Empty(cs));
+    write_units_and_categories(&mut put);
+    let step = model.communication_step_s.to_string();
+    put(Event::Empty(
+        BytesStart::new("DefaultExperiment")
+            .with_attributes([("startTime", "0"), ("stepSize", step.as_str())]),
+    ));
+
+    put(Event::Start(BytesStart::new("ModelVariables")));
+    // FMI 3.0 requires exactly one independent variable
+    let time_vr = understudy_runtime::fmi3::TIME_VR.to_string();
+    put(Event::Empty(BytesStart::new("Float64").with_attributes([
+        ("name", "time"),
+        ("valueReference", time_vr.as_str()),
+        ("description", "Simulation time (s)"),
+        ("causality", "independent"),
+        ("variability", "continuous"),
+    ])));
+    for v in &VARIABLES {
+        let vr = v.vr.to_string();
+        let mut e = BytesStart::new(match v.ty {
+            VarType::Real => "Float64",
+            VarType::Boolean => "Boolean",
+        });
+        e.push_attribute(("name", v.name));
+        e.push_attribute(("valueReference", vr.as_str()));
+        e.push_attribute(("description", v.description));
+        e.push_attribute(("causality", causality(v)));
+        e.push_attribute(("variability", variability(v)));
+        if let Some(i) = initial(v) {
+            e.push_attribute(("initial", i));
+        }
+        let start = start_value(model, v).map(|s| s.to_string());
+        if let Some(s) = &start {
+            e.push_attribute(("start", s.as_str()));
+        }
+        if let Some(u) = v.unit {
+            e.push_attribute(("unit", u));
+        }
+        put(Event::Empty(e));
+    }
+    put(Event::End(BytesEnd::new("ModelVariables")));
+
+    // every output is computed at initialisation, so each is also an initial unknown
+    // (dependencies omitted = may depend on every input and parameter)
+    put(Event::Start(BytesStart::new("ModelStructure")));
+    for section in ["Output", "InitialUnknown"] {
+        for v in VARIABLES
+            .iter()
+            .filter(|v| v.causality == Causality::Output)
+        {
+            let vr = v.vr.to_string();
+            put(Event::Empty(
+                BytesStart::new(section).with_attributes([("valueReference", vr.as_str())]),
+            ));
+        }
+    }
+    put(Event::End(BytesEnd::new("ModelStructure")));
+    put(Event::End(BytesEnd::new("fmiModelDescription")));
+    String::from_utf8(w.into_inner()).expect("the XML writer writes UTF-8")
+}
+
 /// `documentation/index.html`: what the FMU is, its interface, and how far to trust it.
-pub fn documentation(model: &ModelFile, guid: &str) -> String {
+pub fn documentation(model: &ModelFile, guid: &str, version: FmiVersion) -> String {
+    let standard = match version {
+        FmiVersion::V2 => "FMI 2.0 Co-Simulation, GUID",
+        FmiVersion::V3 => "FMI 3.0 Co-Simulation, instantiation token",
+    };
     let kind = match &model.model {
         understudy_runtime::cosim::ModelKind::FullConverter { .. } => {
             "the detailed RMS model of a full-converter generator (grid-side converter with PLL, \
@@ -416,7 +533,7 @@ pub fn documentation(model: &ModelFile, guid: &str) -> String {
 <html lang="en"><head><meta charset="utf-8"><title>{name}</title></head>
 <body>
 <h1>{name}</h1>
-<p>{description}. This FMU (FMI 2.0 Co-Simulation, GUID <code>{guid}</code>) contains {kind},
+<p>{description}. This FMU ({standard} <code>{guid}</code>) contains {kind},
 made with understudy {version}.</p>
 <p>Per unit on S<sub>base</sub> = {s} MVA and V<sub>base</sub> = {v} kV (line to line); phasors in
 the host's network frame, which rotates at nominal frequency; generator convention (positive P and

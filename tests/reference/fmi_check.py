@@ -3,13 +3,13 @@
 stdin:  {"fmu": path, "stop_time": s, "step": s,
          "input": [[t, v_re, v_im], ...]  (a terminal-voltage table; repeated times = a jump),
          "start_values": {name: value}}
-stdout: {"problems": [text, ...]            fmpy.validation.validate_fmu,
+stdout: {"problems": [text, ...]            fmpy.validation.validate_fmu, "fmi_version": ..,
          "guid": ..., "model_identifier": ..., "outputs": [names], "capabilities": {...},
          "time": [s], "v_re": [..], "v_im": [..], "i_re": [..], "i_im": [..], "p": [..],
          "q": [..], "out_of_envelope": [0/1], "log": [lines]}
 
 The simulation is fmpy.simulate_fmu with fmi_type="CoSimulation" and output_interval = step,
-so FMPy calls fmi2DoStep once per step, applies the input table before each step
+so FMPy calls fmi2DoStep (FMI 3.0: fmi3DoStep) once per step, applies the input table before each step
 (after_event=True at a jump) and records the outputs after it. The inputs are recorded too
 (fmi2GetReal returns the value FMPy set), so the caller can replay the exact same inputs.
 """
@@ -36,7 +36,10 @@ def main():
     )
     log = []
 
-    def logger(component_environment, instance_name, status, category, message):
+    def logger(*args):
+        # FMI 2.0: (environment, instanceName, status, category, message);
+        # FMI 3.0: (instanceEnvironment, status, category, message)
+        status, category, message = args[-3:]
         log.append(f"{status} {category.decode()} {message.decode()}")
 
     names = ["v_re", "v_im", "i_re", "i_im", "p", "q", "out_of_envelope"]
@@ -56,13 +59,14 @@ def main():
         )
     answer = {
         "problems": problems,
+        "fmi_version": md.fmiVersion,
         "guid": md.guid,
         "model_identifier": cs.modelIdentifier,
         "outputs": [v.variable.name for v in md.outputs],
         "initial_unknowns": [v.variable.name for v in md.initialUnknowns],
         "capabilities": {
-            "canGetAndSetFMUstate": bool(cs.canGetAndSetFMUstate),
-            "canSerializeFMUstate": bool(cs.canSerializeFMUstate),
+            "canGetAndSetFMUstate": bool(getattr(cs, "canGetAndSetFMUstate", False)),
+            "canSerializeFMUstate": bool(getattr(cs, "canSerializeFMUstate", False)),
             "canHandleVariableCommunicationStepSize": bool(cs.canHandleVariableCommunicationStepSize),
         },
         "default_step": float(md.defaultExperiment.stepSize) if md.defaultExperiment else None,
