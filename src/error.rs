@@ -7,6 +7,7 @@ use understudy_runtime::ode::OdeError;
 use understudy_runtime::unit::UnitError;
 
 use crate::fmi::export::ExportError;
+use crate::fmi::import::ImportError;
 use crate::signal::trace::TraceError;
 
 #[derive(Debug, Error)]
@@ -32,6 +33,8 @@ pub enum Error {
     Trace(#[from] TraceError),
     #[error(transparent)]
     Export(#[from] ExportError),
+    #[error(transparent)]
+    Import(#[from] ImportError),
     #[error("{0}")]
     Failed(String),
 }
@@ -66,6 +69,18 @@ impl Error {
             Error::Integration { .. } | Error::Failed(_) => 1,
             Error::Export(ExportError::Model(_) | ExportError::Platform(_)) => 2,
             Error::Export(_) => 1,
+            // a file that is not a usable FMU is bad input; a failing FMU is a failure of the work
+            Error::Import(
+                ImportError::NotAnFmu { .. }
+                | ImportError::Description { .. }
+                | ImportError::Platform { .. }
+                | ImportError::Library { .. }
+                | ImportError::MissingFunction { .. }
+                | ImportError::Preload { .. }
+                | ImportError::UnknownVariable { .. }
+                | ImportError::VariableType { .. },
+            ) => 2,
+            Error::Import(_) => 1,
         }
     }
 }

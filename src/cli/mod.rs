@@ -1,5 +1,6 @@
 //! Subcommands, one file each; each is thin and calls one library function.
 
+mod check;
 mod demo;
 mod export;
 mod ingest;
@@ -130,6 +131,42 @@ pub enum Command {
         /// No progress bar.
         #[arg(long)]
         quiet: bool,
+        /// With `--unit fmu:PATH`: a TOML file naming the FMU's terminal variables
+        /// (v_re, v_im, i_re, i_im, p, q, p_ref, q_ref, optional f_grid).
+        #[arg(long)]
+        map: Option<PathBuf>,
+        /// With `--unit fmu:PATH`: a shared library to load with RTLD_GLOBAL before the FMU
+        /// (e.g. libpython3.x.so for FMUs made with pythonfmu). Repeatable.
+        #[arg(long)]
+        preload: Vec<PathBuf>,
+    },
+    /// Check an FMU: what it declares, FMI conformance, and (with --traces) its errors against
+    /// recorded traces. The FMU runs in a child process. Exit 0 all pass, 1 a finding, 2 bad input.
+    Check {
+        fmu: PathBuf,
+        /// A folder of traces to replay (terminal voltage in, current and P, Q compared).
+        #[arg(long)]
+        traces: Option<PathBuf>,
+        /// Print the report as JSON.
+        #[arg(long)]
+        json: bool,
+        /// A TOML file naming the FMU's terminal variables (default: understudy's names).
+        #[arg(long)]
+        map: Option<PathBuf>,
+        /// A shared library to load with RTLD_GLOBAL before the FMU. Repeatable.
+        #[arg(long)]
+        preload: Vec<PathBuf>,
+    },
+    /// (internal) the child process of `check`.
+    #[command(name = "__check-worker", hide = true)]
+    CheckWorker {
+        fmu: PathBuf,
+        #[arg(long)]
+        traces: Option<PathBuf>,
+        #[arg(long)]
+        map: Option<PathBuf>,
+        #[arg(long)]
+        preload: Vec<PathBuf>,
     },
 }
 
@@ -180,6 +217,8 @@ pub fn run(cli: Cli) -> Result<i32, Error> {
             seed,
             out,
             quiet,
+            map,
+            preload,
         } => simulate::run(simulate::Request {
             study,
             unit,
@@ -187,7 +226,28 @@ pub fn run(cli: Cli) -> Result<i32, Error> {
             seed,
             out,
             quiet,
+            map,
+            preload,
         }),
+        Command::Check {
+            fmu,
+            traces,
+            json,
+            map,
+            preload,
+        } => check::run(check::Request {
+            fmu,
+            traces,
+            map,
+            preload,
+            json,
+        }),
+        Command::CheckWorker {
+            fmu,
+            traces,
+            map,
+            preload,
+        } => check::worker(&fmu, traces.as_deref(), map.as_deref(), &preload),
     }
 }
 

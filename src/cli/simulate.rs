@@ -1,4 +1,6 @@
 use std::path::PathBuf;
+use understudy::fmi::blackbox::{self, VariableMap};
+use understudy::fmi::import::{Fmu, LoadOptions};
 use understudy::study::{Study, UnitKind};
 use understudy::{demo, simulate, Error};
 
@@ -9,6 +11,8 @@ pub struct Request {
     pub seed: Option<u64>,
     pub out: PathBuf,
     pub quiet: bool,
+    pub map: Option<PathBuf>,
+    pub preload: Vec<PathBuf>,
 }
 
 pub fn run(req: Request) -> Result<i32, Error> {
@@ -16,17 +20,19 @@ pub fn run(req: Request) -> Result<i32, Error> {
         Some(p) => Study::load(p)?,
         None => demo::demo_study(),
     };
+    let mut fmu_path = None;
     if let Some(unit) = &req.unit {
-        if let Some(path) = unit.strip_prefix("fmu:") {
-            return Err(Error::bad_input(
-                "--unit",
-                unit.clone(),
-                format!(
-                    "`full-converter`: FMU sources (here {path}) are not available in this version"
-                ),
-            ));
+        match unit.strip_prefix("fmu:") {
+            Some(path) => fmu_path = Some(PathBuf::from(path)),
+            None => study.unit.kind = unit.parse::<UnitKind>()?,
         }
-        study.unit.kind = unit.parse::<UnitKind>()?;
+    }
+    if fmu_path.is_none() && (req.map.is_some() || !req.preload.is_empty()) {
+        return Err(Error::bad_input(
+            "--map/--preload",
+            "given",
+            "only together with --unit fmu:PATH",
+        ));
     }
     if let Some(n) = req.cases {
         study.design.cases = n;
@@ -36,10 +42,37 @@ pub fn run(req: Request) -> Result<i32, Error> {
     }
     study.validate()?;
     let unit = study.unit.clone();
-    let (cases, redraws) = study.design.generate(|c| simulate::feasible(&unit, c))?;
-    let bar = super::progress_bar(cases.len(), "simulate", req.quiet);
-    let summary = simulate::run_study(&study, &cases, redraws, &req.out, &|_, _| bar.inc(1))?;
-    bar.finish_and_clear();
+    let summary = match &fmu_path {
+        None => {
+            let (cases, redraws) = study.design.generate(|c| simulate::feasible(&unit, c))?;
+            let bar = super::progress_bar(cases.len(), "simulate", req.quiet);
+            let s = simulate::run_study(&study, &cases, redraws, &req.out, &|_, _| bar.inc(1))?;
+            bar.finish_and_clear();
+            s
+        }
+        Some(path) => {
+            let map = match &req.map {
+                Some(m) => VariableMap::load(m)?,
+                None => VariableMap::default(),
+            };
+            let mut options = LoadOptions::default();
+            for p in &req.preload {
+                options = options.with_preload(p);
+            }
+            let fmu = Fmu::load_with(path, &options)?;
+            for w in fmu.warnings() {
+                eprintln!("warning: {}: {w}", path.display());
+            }
+            let (cases, redraws) = study.design.generate(blackbox::feasible)?;
+            let bar = super::progress_bar(cases.len(), "simulate", req.quiet);
+            let s =
+                blackbox::run_study_fmu(&fmu, &map, &study, &cases, redraws, &req.out, &|_, _| {
+                    bar.inc(1)
+                })?;
+            bar.finish_and_clear();
+            s
+        }
+    };
     eprintln!(
         "{} traces written to {} ({} failed); {:.1} simulated s per wall s",
         summary.cases.len(),

@@ -6,6 +6,7 @@ mod common;
 mod comtrade;
 mod fmi;
 mod fmi3;
+mod fmi_import;
 mod full_converter;
 mod mbam;
 mod ode;
