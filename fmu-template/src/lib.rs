@@ -5,8 +5,10 @@
 #![deny(clippy::float_cmp)]
 
 pub mod block;
+pub mod correction;
 pub mod cosim;
 pub mod fmi2;
+pub mod hybrid;
 pub mod ode;
 pub mod unit;
 pub mod variables;

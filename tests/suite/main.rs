@@ -5,6 +5,7 @@ mod blocks;
 mod common;
 mod comtrade;
 mod fmi;
+mod hybrid;
 mod full_converter;
 mod mbam;
 mod ode;
