@@ -65,7 +65,9 @@ fn reference_python() -> Option<std::path::PathBuf> {
 }
 
 fn rows(m: &DMatrix<f64>) -> Vec<Vec<f64>> {
-    (0..m.nrows()).map(|i| m.row(i).iter().copied().collect()).collect()
+    (0..m.nrows())
+        .map(|i| m.row(i).iter().copied().collect())
+        .collect()
 }
 
 /// Our DMDc against PyDMD's on a demo-like residual set, same data, same ranks, one run.
@@ -97,7 +99,8 @@ fn compare_with_pydmd(_: &mut Criterion) {
         println!("PyDMD comparison skipped: no reference venv (set UNDERSTUDY_REFERENCE_PYTHON)");
         return;
     };
-    let script = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/reference/bench_dmdc.py");
+    let script =
+        std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/reference/bench_dmdc.py");
     let request = serde_json::json!({
         "snapshots": rows(&embedded.states),
         "inputs": rows(&embedded.inputs),
@@ -112,7 +115,10 @@ fn compare_with_pydmd(_: &mut Criterion) {
     {
         Ok(c) => c,
         Err(e) => {
-            println!("PyDMD comparison skipped: cannot run {}: {e}", python.display());
+            println!(
+                "PyDMD comparison skipped: cannot run {}: {e}",
+                python.display()
+            );
             return;
         }
     };

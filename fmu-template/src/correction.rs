@@ -145,9 +145,7 @@ impl Correction {
     }
 
     /// The checked matrices (A, B, C).
-    pub fn matrices(
-        &self,
-    ) -> Result<(DMatrix<f64>, DMatrix<f64>, DMatrix<f64>), CorrectionError> {
+    pub fn matrices(&self) -> Result<(DMatrix<f64>, DMatrix<f64>, DMatrix<f64>), CorrectionError> {
         let n = self.order();
         Ok((
             to_matrix("a", &self.a, n, n)?,

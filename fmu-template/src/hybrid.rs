@@ -62,8 +62,8 @@ impl HybridCoSim {
                 expected: "an internal step > 0 s".into(),
             });
         }
-        let correction = CorrectionStepper::new(correction)
-            .map_err(|e| CoSimError::ModelFile(e.to_string()))?;
+        let correction =
+            CorrectionStepper::new(correction).map_err(|e| CoSimError::ModelFile(e.to_string()))?;
         Ok(Self {
             free: model.free_parameter_values(),
             model,

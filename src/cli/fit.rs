@@ -1,5 +1,7 @@
 use std::path::{Path, PathBuf};
-use understudy::hybrid::{fit_hybrid, read_reduced, write_report, HybridConfig, HybridError, Physics};
+use understudy::hybrid::{
+    fit_hybrid, read_reduced, write_report, HybridConfig, HybridError, Physics,
+};
 use understudy::signal::trace::read_folder;
 use understudy::Error;
 
@@ -25,7 +27,11 @@ pub fn run(req: Request) -> Result<i32, Error> {
     let config = HybridConfig::default()
         .with_held_out_fraction(req.held_out)
         .map_err(|_| {
-            Error::bad_input("--held-out", req.held_out.to_string(), "a fraction in (0, 0.5]")
+            Error::bad_input(
+                "--held-out",
+                req.held_out.to_string(),
+                "a fraction in (0, 0.5]",
+            )
         })?
         .with_keep_fraction(req.keep_fraction)
         .map_err(|_| {
@@ -37,12 +43,14 @@ pub fn run(req: Request) -> Result<i32, Error> {
         })?;
     let physics = match (&req.reduced, &req.template) {
         (Some(p), _) => Physics::Reduced(read_reduced(p).map_err(map)?),
-        (None, Some(t)) => Physics::FitTemplate(
-            understudy::greybox::read_template(t).map_err(|e| Error::BadFile {
-                path: t.clone(),
-                message: e.to_string(),
-            })?,
-        ),
+        (None, Some(t)) => {
+            Physics::FitTemplate(understudy::greybox::read_template(t).map_err(|e| {
+                Error::BadFile {
+                    path: t.clone(),
+                    message: e.to_string(),
+                }
+            })?)
+        }
         (None, None) => Physics::FitTemplate(understudy::greybox::generic_converter()),
     };
     let traces: Vec<(String, understudy::signal::trace::Trace)> = read_folder(&req.traces)?
@@ -81,11 +89,12 @@ pub fn run(req: Request) -> Result<i32, Error> {
     let (p_red, p_hyb) = outcome.median_nrmse("p");
     let (q_red, q_hyb) = outcome.median_nrmse("q");
     println!(
-        "hybrid: correction order {} ({} delays, rank {}), {} eigenvalue(s) moved for stability",
+        "hybrid: correction order {} ({} delays, rank {}), {} eigenvalue(s) moved for stability, {} off the negative real axis",
         outcome.order,
         outcome.delays,
         outcome.rank,
-        outcome.stability.moved.len()
+        outcome.stability.moved.len(),
+        outcome.moved_to_real_axis.len()
     );
     println!(
         "compressed sensing: kept {:.1} % of DCT coefficients, reconstruction error {:.4}",

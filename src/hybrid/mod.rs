@@ -18,13 +18,15 @@ pub use report::write_report;
 use crate::fit::{LevenbergMarquardt, LmConfig};
 use crate::greybox::{FitTrace, GreyboxError, SignalWeights, TemplateFit};
 use crate::residual::dmd::{
-    delay_embed, fit_dmdc, Complex64, DmdConfig, RankSelection, StabilityReport,
+    delay_embed, fit_dmdc, Complex64, DmdConfig, MovedEigenvalue, RankSelection, StabilityReport,
 };
 use crate::residual::sparse::compress;
 use crate::residual::ResidualError;
 use crate::signal::trace::Trace;
 use crate::split::{held_out_split, SplitError};
-use crate::validate::metrics::{compare_signal, median, MetricError, SignalComparison, WindowConfig};
+use crate::validate::metrics::{
+    compare_signal, median, MetricError, SignalComparison, WindowConfig,
+};
 use nalgebra::DMatrix;
 use rayon::prelude::*;
 use std::path::{Path, PathBuf};
@@ -32,8 +34,8 @@ use thiserror::Error;
 use understudy_runtime::block::{EvalConfig, OutputSeries, Template};
 use understudy_runtime::correction::{rows_of, Correction, PreFault, CORRECTION_INPUTS};
 use understudy_runtime::cosim::{
-    Bases, CoSimError, CoSimModel, Envelope, Inputs, ModelFile, ModelKind, Setpoints,
-    StartValues, HYBRID_MODEL_FORMAT,
+    Bases, CoSimError, CoSimModel, Envelope, Inputs, ModelFile, ModelKind, Setpoints, StartValues,
+    HYBRID_MODEL_FORMAT,
 };
 use understudy_runtime::hybrid::OperatingRange;
 
@@ -102,7 +104,7 @@ impl Default for HybridConfig {
             // 5 %: the default of the compressed-sensing step (issue 4)
             keep_fraction: 0.05,
             delays: 6,
-            rank: RankSelection::Energy(0.99999),
+            rank: RankSelection::Energy(0.9999),
             stability_margin: 0.999,
             enforce_stability: true,
             physics_iterations: 25,
@@ -348,7 +350,12 @@ pub fn evaluate(model: &ModelFile, case: &Case) -> Result<OutputSeries<f64>, Hyb
 /// Active and reactive current (pu) in the frame of the present terminal voltage:
 /// i_p = Re(i·e^{−jθ_v}) = P/|v|, i_q = −Im(i·e^{−jθ_v}) = Q/|v| (generator convention);
 /// the last defined angle is kept while |v| < 1e-3 pu.
-pub fn active_reactive(v_re: &[f64], v_im: &[f64], i_re: &[f64], i_im: &[f64]) -> (Vec<f64>, Vec<f64>) {
+pub fn active_reactive(
+    v_re: &[f64],
+    v_im: &[f64],
+    i_re: &[f64],
+    i_im: &[f64],
+) -> (Vec<f64>, Vec<f64>) {
     let mut theta = 0.0;
     let mut ip = Vec::with_capacity(v_re.len());
     let mut iq = Vec::with_capacity(v_re.len());
@@ -416,6 +423,8 @@ pub struct HybridOutcome {
     pub delays: usize,
     pub discrete_eigenvalues: Vec<Complex64>,
     pub stability: StabilityReport,
+    /// Real eigenvalues ≤ 0 moved to their modulus so that the continuous form exists.
+    pub moved_to_real_axis: Vec<MovedEigenvalue>,
     /// Residuals (Δi_d) of every training case, for the heat map.
     pub residual_rows: Vec<(String, Vec<f64>)>,
     pub residual_time_s: Vec<f64>,
@@ -470,10 +479,12 @@ fn model_file(
     cases: &[&Case],
 ) -> ModelFile {
     let fold = |f: &dyn Fn(&Case) -> Vec<f64>| {
-        cases.iter().flat_map(|c| f(c)).fold(
-            (f64::INFINITY, f64::NEG_INFINITY),
-            |(lo, hi), v| (lo.min(v), hi.max(v)),
-        )
+        cases
+            .iter()
+            .flat_map(|c| f(c))
+            .fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), v| {
+                (lo.min(v), hi.max(v))
+            })
     };
     let (u_min, u_max) = fold(&|c| {
         c.data
@@ -585,10 +596,8 @@ pub fn fit_hybrid(
             let mut rd = Vec::with_capacity(c.data.len());
             let mut rq = Vec::with_capacity(c.data.len());
             for k in 0..c.data.len() {
-                let (d, q) = pf.from_network(
-                    c.data.i_re[k] - o.i_re[k],
-                    c.data.i_im[k] - o.i_im[k],
-                );
+                let (d, q) =
+                    pf.from_network(c.data.i_re[k] - o.i_re[k], c.data.i_im[k] - o.i_im[k]);
                 rd.push(d);
                 rq.push(q);
             }
@@ -684,7 +693,10 @@ pub fn fit_hybrid(
             radius: fit.stability.spectral_radius,
         });
     }
-    let continuous = fit.model.to_continuous()?;
+    // a real eigenvalue ≤ 0 has no continuous-time counterpart at this sample step: it is
+    // moved to its modulus (same decay, no sign flip every sample) and reported
+    let (discrete, moved_to_real_axis) = fit.model.without_negative_real(1e-3)?;
+    let continuous = discrete.to_continuous()?;
     let newest = (config.delays - 1) * 2..config.delays * 2;
     let c_out = continuous.c.rows(newest.start, newest.len()).into_owned();
     let correction = Correction {
@@ -694,12 +706,10 @@ pub fn fit_hybrid(
     };
     let order = correction.order();
     let model = model_file("hybrid", &template, step_s, correction, bases, &training);
-    model
-        .validate()
-        .map_err(|source| HybridError::Runtime {
-            trace: "(model file)".into(),
-            source,
-        })?;
+    model.validate().map_err(|source| HybridError::Runtime {
+        trace: "(model file)".into(),
+        source,
+    })?;
 
     progress(&format!(
         "validation: {} held-out traces through the runtime",
@@ -735,7 +745,8 @@ pub fn fit_hybrid(
         order,
         rank: fit.rank,
         delays: config.delays,
-        discrete_eigenvalues: fit.model.eigenvalues()?,
+        discrete_eigenvalues: discrete.eigenvalues()?,
+        moved_to_real_axis,
         stability: fit.stability,
         residual_rows,
         residual_time_s: training[0].time_s.clone(),

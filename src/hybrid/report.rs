@@ -1,6 +1,6 @@
 //! The hybrid's validation report (self-contained HTML, written atomically).
 
-use super::{HybridOutcome, SIGNALS};
+use super::HybridOutcome;
 use crate::validate::metrics::Window;
 use crate::validate::plot::{eigenvalue_plot, heat_map, line_chart, log_spectrum, Series};
 use crate::validate::report::{Report, CAUTION};
@@ -36,6 +36,7 @@ pub fn write_report(outcome: &HybridOutcome, path: &Path) -> std::io::Result<()>
         100.0 * outcome.compression.keep_fraction,
         outcome.compression.relative_error
     ));
+    r.heading("Kept DCT coefficients");
     r.figure(
         &log_spectrum(
             "Kept DCT coefficients (first training trace, Δi_d)",
@@ -49,9 +50,14 @@ pub fn write_report(outcome: &HybridOutcome, path: &Path) -> std::io::Result<()>
         .iter()
         .map(|(_, r)| r.clone())
         .collect();
-    let labels: Vec<String> = outcome.residual_rows.iter().map(|(n, _)| n.clone()).collect();
+    let labels: Vec<String> = outcome
+        .residual_rows
+        .iter()
+        .map(|(n, _)| n.clone())
+        .collect();
     let n = rows.iter().map(Vec::len).min().unwrap_or(0);
     let rows: Vec<Vec<f64>> = rows.into_iter().map(|r| r[..n].to_vec()).collect();
+    r.heading("Residuals across cases");
     r.figure(
         &heat_map(
             "Residual Δi_d (detailed − reduced) across training cases",
@@ -76,11 +82,22 @@ pub fn write_report(outcome: &HybridOutcome, path: &Path) -> std::io::Result<()>
             ))
             .collect::<String>()
     ));
+    r.paragraph(&format!(
+        "{} real eigenvalue(s) ≤ 0 (no continuous-time form at this sample step) moved to \
+         their modulus:{}",
+        outcome.moved_to_real_axis.len(),
+        outcome
+            .moved_to_real_axis
+            .iter()
+            .map(|m| format!(" {:.4} → {:.4}.", m.before.re, m.after.re))
+            .collect::<String>()
+    ));
     let eig: Vec<(f64, f64)> = outcome
         .discrete_eigenvalues
         .iter()
         .map(|v| (v.re, v.im))
         .collect();
+    r.heading("DMD eigenvalues");
     r.figure(
         &eigenvalue_plot("DMD eigenvalues of the correction", &eig),
         "Discrete-time eigenvalues at the sample step, with the unit circle.",
@@ -210,7 +227,6 @@ pub fn write_report(outcome: &HybridOutcome, path: &Path) -> std::io::Result<()>
             &["case", "signal", "window", "ME", "MAE", "MXE"],
             &windows_rows,
         );
-    let _ = SIGNALS;
     r.paragraph(CAUTION);
     crate::atomic::write_atomic(path, r.to_html().as_bytes())
 }
