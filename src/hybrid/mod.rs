@@ -359,13 +359,13 @@ pub fn active_reactive(
     let mut theta = 0.0;
     let mut ip = Vec::with_capacity(v_re.len());
     let mut iq = Vec::with_capacity(v_re.len());
-    for k in 0..v_re.len() {
-        if v_re[k].hypot(v_im[k]) > 1e-3 {
-            theta = v_im[k].atan2(v_re[k]);
+    for (((vr, vi), ir), ii) in v_re.iter().zip(v_im).zip(i_re).zip(i_im) {
+        if vr.hypot(*vi) > 1e-3 {
+            theta = vi.atan2(*vr);
         }
         let (s, c) = f64::sin_cos(theta);
-        ip.push(i_re[k] * c + i_im[k] * s);
-        iq.push(-(-i_re[k] * s + i_im[k] * c));
+        ip.push(ir * c + ii * s);
+        iq.push(-(-ir * s + ii * c));
     }
     (ip, iq)
 }
@@ -624,18 +624,18 @@ pub fn fit_hybrid(
     let mut compressed: Vec<[Vec<f64>; 2]> = Vec::with_capacity(residuals.len());
     for (ci, r) in residuals.iter().enumerate() {
         let mut pair: [Vec<f64>; 2] = [Vec::new(), Vec::new()];
-        for ch in 0..2 {
-            let c = compress(&r[ch], config.keep_fraction)?;
-            err2 += r[ch]
+        for (ch, (signal, slot)) in r.iter().zip(pair.iter_mut()).enumerate() {
+            let c = compress(signal, config.keep_fraction)?;
+            err2 += signal
                 .iter()
                 .zip(&c.reconstruction)
                 .map(|(a, b)| (a - b) * (a - b))
                 .sum::<f64>();
-            norm2 += r[ch].iter().map(|a| a * a).sum::<f64>();
+            norm2 += signal.iter().map(|a| a * a).sum::<f64>();
             if ci == 0 && ch == 0 {
                 example_kept = c.kept_values.iter().map(|v| v.abs()).collect();
             }
-            pair[ch] = c.reconstruction;
+            *slot = c.reconstruction;
         }
         compressed.push(pair);
     }
