@@ -89,6 +89,9 @@ pub struct Correction {
     pub c: Vec<Vec<f64>>,
 }
 
+/// The checked (A, B, C) of a correction.
+pub type Matrices = (DMatrix<f64>, DMatrix<f64>, DMatrix<f64>);
+
 /// A correction's matrices do not fit together or are not finite.
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
 #[error("correction matrix `{matrix}`: {message}")]
@@ -145,7 +148,7 @@ impl Correction {
     }
 
     /// The checked matrices (A, B, C).
-    pub fn matrices(&self) -> Result<(DMatrix<f64>, DMatrix<f64>, DMatrix<f64>), CorrectionError> {
+    pub fn matrices(&self) -> Result<Matrices, CorrectionError> {
         let n = self.order();
         Ok((
             to_matrix("a", &self.a, n, n)?,

@@ -548,6 +548,7 @@ fn fnv1a_128(bytes: &[u8]) -> u128 {
 
 /// Any model a model file can hold.
 #[derive(Debug, Clone)]
+#[allow(clippy::large_enum_variant)] // one per FMU instance; the hybrid is boxed already
 pub enum LoadedModel {
     FullConverter(FullConverterCoSim),
     Hybrid(Box<crate::hybrid::HybridCoSim>),
