@@ -12,6 +12,7 @@ pub mod error;
 pub mod fit;
 pub mod fmi;
 pub mod greybox;
+pub mod hybrid;
 pub mod reduce;
 pub mod residual;
 pub mod scenario;

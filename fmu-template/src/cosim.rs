@@ -23,12 +23,21 @@ use thiserror::Error;
 /// The model-file format this runtime reads and writes.
 pub const MODEL_FORMAT: &str = "understudy-model/1";
 
+/// The format of files that hold a hybrid surrogate (a newer runtime than version 1 is needed
+/// for them, so they say so); this runtime reads both. Files of kinds that existed in version 1
+/// are still written as version 1.
+pub const HYBRID_MODEL_FORMAT: &str = "understudy-model/2";
+
+fn known_format(format: &str) -> bool {
+    format == MODEL_FORMAT || format == HYBRID_MODEL_FORMAT
+}
+
 /// Failures of a co-simulated model: bad files, bad inputs, no steady state, failed steps.
 #[derive(Debug, Error, Clone, PartialEq)]
 pub enum CoSimError {
     #[error("model file is not valid JSON of format `{MODEL_FORMAT}`: {0}")]
     ModelFile(String),
-    #[error("model file format `{found}` is not supported: expected `{MODEL_FORMAT}`")]
+    #[error("model file format `{found}` is not supported: expected `{MODEL_FORMAT}` or `{HYBRID_MODEL_FORMAT}`")]
     Format { found: String },
     #[error("`{field}` = {value} is invalid: expected {expected}")]
     BadValue {
@@ -356,6 +365,16 @@ pub enum ModelKind {
         params: FullConverterParams,
         integration: Method,
     },
+    /// The hybrid surrogate: reduced block-model physics plus a linear correction (format 2).
+    Hybrid {
+        /// The reduced template with its fitted parameter values.
+        template: crate::block::Template,
+        /// The block model's internal step (s).
+        internal_step_s: f64,
+        correction: crate::correction::Correction,
+        /// Operating points seen in training.
+        operating_range: crate::hybrid::OperatingRange,
+    },
 }
 
 /// A model file: what an FMU carries in `resources/model.json`.
@@ -416,7 +435,7 @@ impl ModelFile {
         }
         let head: Head =
             serde_json::from_slice(bytes).map_err(|e| CoSimError::ModelFile(e.to_string()))?;
-        if head.format != MODEL_FORMAT {
+        if !known_format(&head.format) {
             return Err(CoSimError::Format { found: head.format });
         }
         let file: Self =
@@ -430,10 +449,20 @@ impl ModelFile {
     }
 
     pub fn validate(&self) -> Result<(), CoSimError> {
-        if self.format != MODEL_FORMAT {
+        let needed = match self.model {
+            ModelKind::FullConverter { .. } => MODEL_FORMAT,
+            ModelKind::Hybrid { .. } => HYBRID_MODEL_FORMAT,
+        };
+        if !known_format(&self.format) {
             return Err(CoSimError::Format {
                 found: self.format.clone(),
             });
+        }
+        if matches!(self.model, ModelKind::Hybrid { .. }) && self.format != needed {
+            return Err(CoSimError::ModelFile(format!(
+                "a hybrid model needs format `{needed}`, found `{}`",
+                self.format
+            )));
         }
         check(
             "bases.s_base_mva",
@@ -480,6 +509,14 @@ impl ModelFile {
                 params.clone(),
                 integration.clone(),
             )?)),
+            ModelKind::Hybrid {
+                template,
+                internal_step_s,
+                correction,
+                ..
+            } => Ok(LoadedModel::Hybrid(Box::new(
+                crate::hybrid::HybridCoSim::new(template, *internal_step_s, correction)?,
+            ))),
         }
     }
 
@@ -511,8 +548,10 @@ fn fnv1a_128(bytes: &[u8]) -> u128 {
 
 /// Any model a model file can hold.
 #[derive(Debug, Clone)]
+#[allow(clippy::large_enum_variant)] // one per FMU instance; the hybrid is boxed already
 pub enum LoadedModel {
     FullConverter(FullConverterCoSim),
+    Hybrid(Box<crate::hybrid::HybridCoSim>),
 }
 
 /// The saved state of a [`LoadedModel`].
@@ -520,6 +559,7 @@ pub enum LoadedModel {
 #[serde(tag = "kind", rename_all = "kebab-case")]
 pub enum ModelState {
     FullConverter(FullConverterState),
+    Hybrid(crate::hybrid::HybridState),
 }
 
 impl CoSimModel for LoadedModel {
@@ -528,30 +568,42 @@ impl CoSimModel for LoadedModel {
     fn initialise(&mut self, inputs: &Inputs, setpoints: &Setpoints) -> Result<(), CoSimError> {
         match self {
             LoadedModel::FullConverter(m) => m.initialise(inputs, setpoints),
+            LoadedModel::Hybrid(m) => m.initialise(inputs, setpoints),
         }
     }
 
     fn do_step(&mut self, t_s: f64, h_s: f64, inputs: &Inputs) -> Result<(), CoSimError> {
         match self {
             LoadedModel::FullConverter(m) => m.do_step(t_s, h_s, inputs),
+            LoadedModel::Hybrid(m) => m.do_step(t_s, h_s, inputs),
         }
     }
 
     fn outputs(&self, inputs: &Inputs) -> Result<Outputs, CoSimError> {
         match self {
             LoadedModel::FullConverter(m) => m.outputs(inputs),
+            LoadedModel::Hybrid(m) => m.outputs(inputs),
         }
     }
 
     fn save_state(&self) -> ModelState {
         match self {
             LoadedModel::FullConverter(m) => ModelState::FullConverter(m.save_state()),
+            LoadedModel::Hybrid(m) => ModelState::Hybrid(m.save_state()),
         }
     }
 
     fn restore_state(&mut self, state: &ModelState) -> Result<(), CoSimError> {
         match (self, state) {
             (LoadedModel::FullConverter(m), ModelState::FullConverter(s)) => m.restore_state(s),
+            (LoadedModel::Hybrid(m), ModelState::Hybrid(s)) => m.restore_state(s),
+            (_, s) => Err(CoSimError::BadState(format!(
+                "a saved state of another model kind ({})",
+                match s {
+                    ModelState::FullConverter(_) => "full-converter",
+                    ModelState::Hybrid(_) => "hybrid",
+                }
+            ))),
         }
     }
 }

@@ -5,9 +5,11 @@
 #![deny(clippy::float_cmp)]
 
 pub mod block;
+pub mod correction;
 pub mod cosim;
 pub mod fmi2;
 pub mod fmi3;
+pub mod hybrid;
 pub mod ode;
 pub mod unit;
 pub mod variables;

@@ -3,6 +3,7 @@
 mod check;
 mod demo;
 mod export;
+mod fit;
 mod ingest;
 mod init;
 mod reduce;
@@ -95,6 +96,34 @@ pub enum Command {
         /// How many training traces the geodesics use (default 6; refits use all).
         #[arg(long)]
         geodesic_traces: Option<usize>,
+        /// No progress lines, only the summary.
+        #[arg(long)]
+        quiet: bool,
+    },
+    /// Fit the hybrid surrogate (physics + data-driven correction) to traces and validate it on
+    /// held-out ones; writes the model file and report.html next to it. Exit 1 when the
+    /// validation fails the tolerance.
+    Fit {
+        /// Folder of traces (CSV + sidecar, as `simulate` writes).
+        #[arg(long)]
+        traces: PathBuf,
+        /// The reduction's result (understudy-reduced/1 JSON) or a template file with fitted
+        /// values, used as the physics part as it is.
+        #[arg(long)]
+        reduced: Option<PathBuf>,
+        /// Template to fit as the physics part when --reduced is not given (default: the
+        /// built-in generic converter).
+        #[arg(long)]
+        template: Option<PathBuf>,
+        /// The model file to write (JSON).
+        #[arg(long)]
+        out: PathBuf,
+        /// Fraction of traces held out for validation, in (0, 0.5].
+        #[arg(long, default_value = "0.25")]
+        held_out: f64,
+        /// Fraction of DCT coefficients kept per residual trace, in (0, 1].
+        #[arg(long, default_value = "0.05")]
+        keep_fraction: f64,
         /// No progress lines, only the summary.
         #[arg(long)]
         quiet: bool,
@@ -209,6 +238,23 @@ pub fn run(cli: Cli) -> Result<i32, Error> {
             map,
             out,
             step_s: step,
+        }),
+        Command::Fit {
+            traces,
+            reduced,
+            template,
+            out,
+            held_out,
+            keep_fraction,
+            quiet,
+        } => fit::run(fit::Request {
+            traces,
+            reduced,
+            template,
+            out,
+            held_out,
+            keep_fraction,
+            quiet,
         }),
         Command::Simulate {
             study,

@@ -514,6 +514,9 @@ pub fn documentation(model: &ModelFile, guid: &str, version: FmiVersion) -> Stri
             "the detailed RMS model of a full-converter generator (grid-side converter with PLL, \
              current control, DC link, reactive power control and fault ride-through)"
         }
+        understudy_runtime::cosim::ModelKind::Hybrid { .. } => {
+            "a hybrid surrogate: reduced grey-box physics plus a linear correction fitted to the              residuals of a detailed model (DMD with control), validated on held-out faults"
+        }
     };
     let rows: String = VARIABLES
         .iter()

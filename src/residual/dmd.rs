@@ -562,6 +562,42 @@ impl LinearModel {
     /// the factor tends to 1/Δt as λ → 1, so an integrator is fine).
     ///
     /// Errors when an eigenvalue is zero or on the negative real axis: no real logarithm exists.
+    /// Make every eigenvalue have a real logarithm, so that [`to_continuous`](Self::to_continuous)
+    /// exists: a real eigenvalue λ ≤ 0 (a mode that flips sign every sample, at the Nyquist
+    /// frequency, or a dead-beat one) becomes max(|λ|, `floor`), a mode that decays as fast but
+    /// does not alternate. Returns the model and the moved eigenvalues (for the report).
+    pub fn without_negative_real(
+        &self,
+        floor: f64,
+    ) -> Result<(LinearModel, Vec<MovedEigenvalue>), ResidualError> {
+        let eig = real_eigen(&self.a)?;
+        let radius = eig.values.iter().map(|v| v.norm()).fold(0.0, f64::max);
+        let bad = |v: Complex64| v.im.abs() <= 1e-12 * radius.max(1.0) && v.re <= floor;
+        let moved: Vec<MovedEigenvalue> = eig
+            .values
+            .iter()
+            .filter(|v| bad(**v))
+            .map(|&v| MovedEigenvalue {
+                before: v,
+                after: Complex64::new(v.re.abs().max(floor), 0.0),
+            })
+            .collect();
+        if moved.is_empty() {
+            return Ok((self.clone(), moved));
+        }
+        let a = eig.rebuild(
+            |v| {
+                if bad(v) {
+                    Complex64::new(v.re.abs().max(floor), 0.0)
+                } else {
+                    v
+                }
+            },
+            "move eigenvalues off the negative real axis",
+        )?;
+        Ok((LinearModel { a, ..self.clone() }, moved))
+    }
+
     pub fn to_continuous(&self) -> Result<ContinuousModel, ResidualError> {
         let eig = real_eigen(&self.a)?;
         let radius = eig.values.iter().map(|v| v.norm()).fold(0.0, f64::max);

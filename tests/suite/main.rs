@@ -8,6 +8,7 @@ mod fmi;
 mod fmi3;
 mod fmi_import;
 mod full_converter;
+mod hybrid;
 mod mbam;
 mod ode;
 mod recording;

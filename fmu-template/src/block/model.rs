@@ -1388,6 +1388,21 @@ impl<'m, S: Scalar> Simulator<'m, S> {
         y
     }
 
+    /// The outputs (i_re, i_im, p, q) the next `step` would report for `input`, without
+    /// advancing (what a co-simulation host reads between steps).
+    pub fn peek(&self, input: Sample) -> [S; 4] {
+        let mut probe = self.clone();
+        probe.set_inputs(input);
+        probe.evaluate();
+        let o = self.model.outputs;
+        [
+            probe.signals[o[0]],
+            probe.signals[o[1]],
+            probe.signals[o[2]],
+            probe.signals[o[3]],
+        ]
+    }
+
     /// The value of a signal after the last `step` (for inspection and tests).
     pub fn signal(&self, name: &str) -> Option<S> {
         self.model
@@ -1395,5 +1410,66 @@ impl<'m, S: Scalar> Simulator<'m, S> {
             .iter()
             .position(|n| n == name)
             .map(|k| self.signals[k])
+    }
+}
+
+/// Everything of a running `f64` [`Simulator`] that evolves or was fixed at initialisation:
+/// what an FMU saves and restores (the model and its parameters are not part of it).
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct SimulatorSnapshot {
+    pub signals: Vec<f64>,
+    pub state: Vec<f64>,
+    /// first sample (v_re, v_im, f_grid) and initial outputs (p, q, i_re, i_im)
+    pub first: [f64; 3],
+    pub initial: [f64; 4],
+}
+
+impl<'m> Simulator<'m, f64> {
+    /// A copy of what evolves.
+    pub fn snapshot(&self) -> SimulatorSnapshot {
+        SimulatorSnapshot {
+            signals: self.signals.clone(),
+            state: self.state.clone(),
+            first: [self.first.v_re, self.first.v_im, self.first.f_grid],
+            initial: [
+                self.initial.p,
+                self.initial.q,
+                self.initial.i_re,
+                self.initial.i_im,
+            ],
+        }
+    }
+
+    /// Continue a run from `snapshot`; `None` when its sizes do not fit `model`.
+    ///
+    /// # Panics
+    /// As [`Simulator::new`] for a wrong free-parameter count, step or substeps.
+    pub fn resume(
+        model: &'m BlockModel,
+        free: &[f64],
+        snapshot: &SimulatorSnapshot,
+        step_s: f64,
+        substeps: usize,
+    ) -> Option<Self> {
+        assert!(step_s > 0.0 && step_s.is_finite(), "step must be > 0");
+        assert!(substeps > 0, "substeps must be ≥ 1");
+        if snapshot.signals.len() != model.signal_names.len()
+            || snapshot.state.len() != model.state_len
+        {
+            return None;
+        }
+        let [v_re, v_im, f_grid] = snapshot.first;
+        let [p, q, i_re, i_im] = snapshot.initial;
+        Some(Self {
+            model,
+            params: model.all_params(free),
+            signals: snapshot.signals.clone(),
+            state: snapshot.state.clone(),
+            next_state: vec![0.0; model.state_len],
+            initial: InitialOutputs { p, q, i_re, i_im },
+            first: Sample { v_re, v_im, f_grid },
+            h: step_s / substeps as f64,
+            substeps,
+        })
     }
 }

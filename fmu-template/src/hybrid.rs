@@ -1,0 +1,204 @@
+//! The hybrid surrogate in co-simulation: reduced block-model physics plus the linear
+//! correction ([`crate::correction`]). Output = physics output + correction output; the current
+//! correction is rotated to the network frame and P, Q follow from S = v·conj(i).
+//!
+//! The block model runs at its own internal step (`internal_step_s`, the step it was fitted at)
+//! with the host's input held; the correction is stepped exactly over the host's step.
+
+use crate::block::{BlockModel, InitialOutputs, Sample, Simulator, SimulatorSnapshot, Template};
+use crate::correction::{Correction, CorrectionStepper, PreFault};
+use crate::cosim::{CoSimError, CoSimModel, Inputs, Outputs, Setpoints};
+use serde::{Deserialize, Serialize};
+
+/// The operating points seen in training (pu); reported, and part of the training envelope.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct OperatingRange {
+    pub p_min: f64,
+    pub p_max: f64,
+    pub q_min: f64,
+    pub q_max: f64,
+}
+
+/// A hybrid model ready to run.
+#[derive(Debug, Clone)]
+pub struct HybridCoSim {
+    model: BlockModel,
+    free: Vec<f64>,
+    internal_step_s: f64,
+    correction: CorrectionStepper,
+    running: Option<HybridRunning>,
+}
+
+/// Everything of a [`HybridCoSim`] that evolves (nothing before initialisation).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct HybridState {
+    pub running: Option<HybridRunning>,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct HybridRunning {
+    pub block: SimulatorSnapshot,
+    /// internal steps the block model has taken since initialisation
+    pub block_steps: u64,
+    /// host time reached (s, from initialisation)
+    pub elapsed_s: f64,
+    pub z: Vec<f64>,
+    pub pre_fault: PreFault,
+}
+
+impl HybridCoSim {
+    pub fn new(
+        template: &Template,
+        internal_step_s: f64,
+        correction: &Correction,
+    ) -> Result<Self, CoSimError> {
+        let model = BlockModel::compile(template)
+            .map_err(|e| CoSimError::ModelFile(format!("hybrid template: {e}")))?;
+        if !(internal_step_s.is_finite() && internal_step_s > 0.0) {
+            return Err(CoSimError::BadValue {
+                field: "internal_step_s".into(),
+                value: internal_step_s,
+                expected: "an internal step > 0 s".into(),
+            });
+        }
+        let correction =
+            CorrectionStepper::new(correction).map_err(|e| CoSimError::ModelFile(e.to_string()))?;
+        Ok(Self {
+            free: model.free_parameter_values(),
+            model,
+            internal_step_s,
+            correction,
+            running: None,
+        })
+    }
+
+    pub fn correction_order(&self) -> usize {
+        self.correction.order()
+    }
+
+    fn simulator(&self, snapshot: &SimulatorSnapshot) -> Result<Simulator<'_, f64>, CoSimError> {
+        Simulator::resume(&self.model, &self.free, snapshot, self.internal_step_s, 1).ok_or_else(
+            || CoSimError::BadState("block-model state does not fit the hybrid's template".into()),
+        )
+    }
+}
+
+fn sample(inputs: &Inputs) -> Sample {
+    Sample {
+        v_re: inputs.v_re,
+        v_im: inputs.v_im,
+        f_grid: inputs.f_grid,
+    }
+}
+
+impl CoSimModel for HybridCoSim {
+    type State = HybridState;
+
+    fn initialise(&mut self, inputs: &Inputs, setpoints: &Setpoints) -> Result<(), CoSimError> {
+        inputs.validate()?;
+        let v = inputs.voltage();
+        let initial = InitialOutputs::from_power(v.re, v.im, setpoints.p_ref, setpoints.q_ref);
+        let sim = Simulator::new(
+            &self.model,
+            &self.free,
+            sample(inputs),
+            &initial,
+            self.internal_step_s,
+            1,
+        );
+        self.running = Some(HybridRunning {
+            block: sim.snapshot(),
+            block_steps: 0,
+            elapsed_s: 0.0,
+            z: vec![0.0; self.correction.order()],
+            pre_fault: PreFault {
+                u0: v.norm(),
+                theta0: v.arg(),
+                f0: inputs.f_grid,
+                p0: setpoints.p_ref,
+                q0: setpoints.q_ref,
+            },
+        });
+        Ok(())
+    }
+
+    fn do_step(&mut self, _t_s: f64, h_s: f64, inputs: &Inputs) -> Result<(), CoSimError> {
+        inputs.validate()?;
+        if !(h_s.is_finite() && h_s > 0.0) {
+            return Err(CoSimError::BadValue {
+                field: "h_s".into(),
+                value: h_s,
+                expected: "a communication step > 0 s".into(),
+            });
+        }
+        let mut running = self
+            .running
+            .clone()
+            .ok_or(CoSimError::NotInitialised { call: "do_step" })?;
+        let target = running.elapsed_s + h_s;
+        let mut sim = self.simulator(&running.block)?;
+        // the block model steps at its internal step while a whole step fits before the
+        // target (a relative slack absorbs rounding of sums of host steps)
+        let h = self.internal_step_s;
+        while (running.block_steps + 1) as f64 * h <= target + 1e-9 * h {
+            sim.step(sample(inputs));
+            running.block_steps += 1;
+        }
+        running.block = sim.snapshot();
+        let u = running
+            .pre_fault
+            .input(inputs.v_re, inputs.v_im, inputs.f_grid);
+        self.correction.step(&mut running.z, &u, h_s);
+        running.elapsed_s = target;
+        if running.z.iter().any(|z| !z.is_finite()) {
+            return Err(CoSimError::BadValue {
+                field: "correction state".into(),
+                value: f64::NAN,
+                expected: "finite values after the step".into(),
+            });
+        }
+        self.running = Some(running);
+        Ok(())
+    }
+
+    fn outputs(&self, inputs: &Inputs) -> Result<Outputs, CoSimError> {
+        let running = self
+            .running
+            .as_ref()
+            .ok_or(CoSimError::NotInitialised { call: "outputs" })?;
+        let sim = self.simulator(&running.block)?;
+        let [i_re, i_im, p, q] = sim.peek(sample(inputs));
+        let (di_d, di_q) = self.correction.output(&running.z);
+        let (di_re, di_im) = running.pre_fault.to_network(di_d, di_q);
+        // ΔS = v·conj(Δi): P and Q move with the corrected current
+        let (v_re, v_im) = (inputs.v_re, inputs.v_im);
+        Ok(Outputs {
+            i_re: i_re + di_re,
+            i_im: i_im + di_im,
+            p: p + v_re * di_re + v_im * di_im,
+            q: q + v_im * di_re - v_re * di_im,
+        })
+    }
+
+    fn save_state(&self) -> HybridState {
+        HybridState {
+            running: self.running.clone(),
+        }
+    }
+
+    fn restore_state(&mut self, state: &HybridState) -> Result<(), CoSimError> {
+        if let Some(r) = &state.running {
+            self.simulator(&r.block)?;
+            if r.z.len() != self.correction.order() || r.z.iter().any(|z| !z.is_finite()) {
+                return Err(CoSimError::BadState(format!(
+                    "expected {} finite correction states, found {}",
+                    self.correction.order(),
+                    r.z.len()
+                )));
+            }
+        }
+        self.running = state.running.clone();
+        Ok(())
+    }
+}

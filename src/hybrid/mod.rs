@@ -1,0 +1,755 @@
+//! The hybrid surrogate: reduced physics + a data-driven correction of what it misses, fitted
+//! on training traces and validated on held-out ones through the runtime's own code (the same
+//! code the FMU runs).
+//!
+//! Steps: physics template (the reduction's result, or an LM fit of a template) → residuals
+//! (detailed − physics, as current in the pre-fault voltage frame, see
+//! `understudy_runtime::correction`) → DCT compression of the residual set (kept fraction and
+//! reconstruction error reported) → DMD with control on the delay-embedded compressed residuals,
+//! driven by the correction's inputs → stability enforced → continuous time → model file.
+//! Per unit on the unit rating throughout.
+
+#![deny(clippy::float_cmp)]
+
+mod report;
+
+pub use report::write_report;
+
+use crate::fit::{LevenbergMarquardt, LmConfig};
+use crate::greybox::{FitTrace, GreyboxError, SignalWeights, TemplateFit};
+use crate::residual::dmd::{
+    delay_embed, fit_dmdc, Complex64, DmdConfig, MovedEigenvalue, RankSelection, StabilityReport,
+};
+use crate::residual::sparse::compress;
+use crate::residual::ResidualError;
+use crate::signal::trace::Trace;
+use crate::split::{held_out_split, SplitError};
+use crate::validate::metrics::{
+    compare_signal, median, MetricError, SignalComparison, WindowConfig,
+};
+use nalgebra::DMatrix;
+use rayon::prelude::*;
+use std::path::{Path, PathBuf};
+use thiserror::Error;
+use understudy_runtime::block::{EvalConfig, OutputSeries, Template};
+use understudy_runtime::correction::{rows_of, Correction, PreFault, CORRECTION_INPUTS};
+use understudy_runtime::cosim::{
+    Bases, CoSimError, CoSimModel, Envelope, Inputs, ModelFile, ModelKind, Setpoints, StartValues,
+    HYBRID_MODEL_FORMAT,
+};
+use understudy_runtime::hybrid::OperatingRange;
+
+/// Failures of the hybrid fit. Bad settings and bad data name the setting or trace.
+#[derive(Debug, Error)]
+pub enum HybridError {
+    #[error("setting `{setting}` = {value} is invalid: expected {expected}")]
+    Setting {
+        setting: &'static str,
+        value: f64,
+        expected: &'static str,
+    },
+    #[error(transparent)]
+    Split(#[from] SplitError),
+    #[error(transparent)]
+    Greybox(#[from] GreyboxError),
+    #[error("{path}: {message}")]
+    BadFile { path: PathBuf, message: String },
+    #[error("trace `{trace}`: {message}")]
+    BadTrace { trace: String, message: String },
+    #[error("residual of trace `{trace}`, {signal}: not finite at sample {index}")]
+    NonFiniteResidual {
+        trace: String,
+        signal: &'static str,
+        index: usize,
+    },
+    #[error("correction: {0}")]
+    Residual(#[from] ResidualError),
+    #[error("the fitted correction is unstable (spectral radius {radius:.6} > 1) and stability enforcement is off: not exported")]
+    Unstable { radius: f64 },
+    #[error("runtime evaluation of trace `{trace}`: {source}")]
+    Runtime { trace: String, source: CoSimError },
+    #[error("physics fit: {0}")]
+    PhysicsFit(String),
+    #[error(transparent)]
+    Metric(#[from] MetricError),
+}
+
+impl HybridError {
+    /// Bad input (2) or a failure of the work (1), as the CLI contract says.
+    pub fn is_bad_input(&self) -> bool {
+        !matches!(
+            self,
+            HybridError::Runtime { .. } | HybridError::PhysicsFit(_) | HybridError::Unstable { .. }
+        )
+    }
+}
+
+/// Settings of the hybrid fit.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct HybridConfig {
+    held_out_fraction: f64,
+    keep_fraction: f64,
+    delays: usize,
+    rank: RankSelection,
+    stability_margin: f64,
+    enforce_stability: bool,
+    physics_iterations: usize,
+    windows: WindowConfig,
+}
+
+impl Default for HybridConfig {
+    fn default() -> Self {
+        Self {
+            held_out_fraction: 0.25,
+            // 5 %: the default of the compressed-sensing step (issue 4)
+            keep_fraction: 0.05,
+            delays: 6,
+            rank: RankSelection::Energy(0.9999),
+            stability_margin: 0.999,
+            enforce_stability: true,
+            physics_iterations: 25,
+            windows: WindowConfig::default(),
+        }
+    }
+}
+
+impl HybridConfig {
+    pub fn with_held_out_fraction(mut self, f: f64) -> Result<Self, HybridError> {
+        if !(f > 0.0 && f <= 0.5) {
+            return Err(HybridError::Setting {
+                setting: "held_out_fraction",
+                value: f,
+                expected: "a fraction in (0, 0.5]",
+            });
+        }
+        self.held_out_fraction = f;
+        Ok(self)
+    }
+    /// Fraction of DCT coefficients kept per residual trace, in (0, 1].
+    pub fn with_keep_fraction(mut self, f: f64) -> Result<Self, HybridError> {
+        if !(f > 0.0 && f <= 1.0) {
+            return Err(HybridError::Setting {
+                setting: "keep_fraction",
+                value: f,
+                expected: "a fraction in (0, 1]",
+            });
+        }
+        self.keep_fraction = f;
+        Ok(self)
+    }
+    /// Delay-embedding depth (samples), at least 1.
+    pub fn with_delays(mut self, d: usize) -> Result<Self, HybridError> {
+        if d == 0 {
+            return Err(HybridError::Setting {
+                setting: "delays",
+                value: 0.0,
+                expected: "at least 1 delay",
+            });
+        }
+        self.delays = d;
+        Ok(self)
+    }
+    /// Rank of the correction (a fixed rank larger than the data allow is an error at fit time).
+    pub fn with_rank(mut self, rank: RankSelection) -> Result<Self, HybridError> {
+        DmdConfig::default().with_rank(rank)?;
+        self.rank = rank;
+        Ok(self)
+    }
+    pub fn with_stability_margin(mut self, m: f64) -> Result<Self, HybridError> {
+        DmdConfig::default().with_stability_margin(m)?;
+        self.stability_margin = m;
+        Ok(self)
+    }
+    /// Turning enforcement off makes an unstable fit an error instead of a moved eigenvalue.
+    pub fn with_enforce_stability(mut self, on: bool) -> Self {
+        self.enforce_stability = on;
+        self
+    }
+    pub fn with_physics_iterations(mut self, n: usize) -> Result<Self, HybridError> {
+        if n == 0 {
+            return Err(HybridError::Setting {
+                setting: "physics_iterations",
+                value: 0.0,
+                expected: "at least 1 LM iteration",
+            });
+        }
+        self.physics_iterations = n;
+        Ok(self)
+    }
+    pub fn with_windows(mut self, w: WindowConfig) -> Self {
+        self.windows = w;
+        self
+    }
+    pub fn keep_fraction(&self) -> f64 {
+        self.keep_fraction
+    }
+    pub fn windows(&self) -> &WindowConfig {
+        &self.windows
+    }
+}
+
+/// Where the physics part comes from.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Physics {
+    /// A reduced template with fitted values, used as it is.
+    Reduced(Template),
+    /// A template fitted here by Levenberg–Marquardt on the training traces.
+    FitTemplate(Template),
+}
+
+/// Read `--reduced PATH`: a reduction file (`{"format": "understudy-reduced/1", "template":
+/// ...}`) or a plain template file (TOML or JSON).
+pub fn read_reduced(path: &Path) -> Result<Template, HybridError> {
+    let bad = |message: String| HybridError::BadFile {
+        path: path.to_path_buf(),
+        message,
+    };
+    let text = std::fs::read_to_string(path).map_err(|e| bad(e.to_string()))?;
+    if let Ok(value) = serde_json::from_str::<serde_json::Value>(&text) {
+        if let Some(t) = value.get("template") {
+            let template: Template = serde_json::from_value(t.clone())
+                .map_err(|e| bad(format!("field `template`: {e}")))?;
+            understudy_runtime::block::BlockModel::compile(&template)
+                .map_err(|e| bad(format!("field `template`: {e}")))?;
+            return Ok(template);
+        }
+    }
+    Ok(crate::greybox::read_template(path)?)
+}
+
+/// The physics part for the training traces: THE one place that decides it (the reduction is
+/// wired in here).
+pub fn physics_template(
+    physics: &Physics,
+    training: &[FitTrace],
+    config: &HybridConfig,
+) -> Result<Template, HybridError> {
+    match physics {
+        Physics::Reduced(t) => Ok(t.clone()),
+        Physics::FitTemplate(t) => {
+            let problem = TemplateFit::new(
+                t,
+                training.to_vec(),
+                SignalWeights::default(),
+                EvalConfig::default(),
+            )?;
+            let lm = LevenbergMarquardt::new(
+                LmConfig::default()
+                    .with_max_iterations(config.physics_iterations)
+                    .and_then(|c| c.with_tolerances(1e-6, 1e-8, 1e-8))
+                    .map_err(|e| HybridError::PhysicsFit(e.to_string()))?,
+            );
+            let start = problem.start_log_params();
+            let mut state = lm
+                .init(&problem, &start)
+                .map_err(|e| HybridError::PhysicsFit(e.to_string()))?;
+            // the residuals are piecewise smooth (switches act on samples): a fixed budget,
+            // keeping the best accepted point
+            while state.termination.is_none() && state.iteration < config.physics_iterations {
+                if lm.next_iter(&problem, &mut state).is_err() {
+                    break;
+                }
+            }
+            let fitted: Vec<f64> = state.log_params.iter().copied().collect();
+            Ok(problem.template_at(&fitted))
+        }
+    }
+}
+
+/// One trace as the hybrid fit sees it.
+#[derive(Debug, Clone)]
+pub struct Case {
+    pub name: String,
+    pub time_s: Vec<f64>,
+    pub data: FitTrace,
+    /// Disturbance window [start, end) (s), when the trace's case says so.
+    pub fault: Option<(f64, f64)>,
+}
+
+impl Case {
+    pub fn from_trace(trace: &Trace, name: &str) -> Result<Self, HybridError> {
+        let data = FitTrace::from_trace(trace, name)?;
+        let d = trace.meta.case.get("disturbance");
+        let get = |k: &str| {
+            d.and_then(|d| {
+                d.as_object()
+                    .and_then(|o| o.values().find_map(|v| v.get(k)))
+                    .or_else(|| d.get(k))
+            })
+            .and_then(serde_json::Value::as_f64)
+        };
+        let fault = get("start_s").map(|s| (s, s + get("duration_s").unwrap_or(0.0)));
+        Ok(Self {
+            name: name.into(),
+            time_s: trace.time_s.clone(),
+            data,
+            fault,
+        })
+    }
+
+    fn pre_fault(&self) -> PreFault {
+        let v = num_complex(self.data.v_re[0], self.data.v_im[0]);
+        PreFault {
+            u0: v.0,
+            theta0: v.1,
+            f0: self.data.f_grid.as_ref().map_or(1.0, |f| f[0]),
+            p0: self.data.p[0],
+            q0: self.data.q[0],
+        }
+    }
+
+    fn inputs(&self, k: usize) -> Inputs {
+        Inputs {
+            v_re: self.data.v_re[k],
+            v_im: self.data.v_im[k],
+            f_grid: self.data.f_grid.as_ref().map_or(1.0, |f| f[k]),
+        }
+    }
+}
+
+fn num_complex(re: f64, im: f64) -> (f64, f64) {
+    (re.hypot(im), im.atan2(re))
+}
+
+/// Run a model file over a recorded case through the runtime (initialise at the first sample
+/// with the recorded P, Q as setpoints; output at each sample, then a step at the sample step):
+/// exactly what an FMU host does.
+pub fn evaluate(model: &ModelFile, case: &Case) -> Result<OutputSeries<f64>, HybridError> {
+    let err = |source| HybridError::Runtime {
+        trace: case.name.clone(),
+        source,
+    };
+    let mut m = model.build().map_err(err)?;
+    let sp = Setpoints {
+        p_ref: case.data.p[0],
+        q_ref: case.data.q[0],
+    };
+    m.initialise(&case.inputs(0), &sp).map_err(err)?;
+    let n = case.data.len();
+    let mut out = OutputSeries {
+        i_re: Vec::with_capacity(n),
+        i_im: Vec::with_capacity(n),
+        p: Vec::with_capacity(n),
+        q: Vec::with_capacity(n),
+    };
+    for k in 0..n {
+        let u = case.inputs(k);
+        let o = m.outputs(&u).map_err(err)?;
+        out.i_re.push(o.i_re);
+        out.i_im.push(o.i_im);
+        out.p.push(o.p);
+        out.q.push(o.q);
+        if k + 1 < n {
+            m.do_step(case.time_s[k], case.time_s[k + 1] - case.time_s[k], &u)
+                .map_err(err)?;
+        }
+    }
+    Ok(out)
+}
+
+/// Active and reactive current (pu) in the frame of the present terminal voltage:
+/// i_p = Re(i·e^{−jθ_v}) = P/|v|, i_q = −Im(i·e^{−jθ_v}) = Q/|v| (generator convention);
+/// the last defined angle is kept while |v| < 1e-3 pu.
+pub fn active_reactive(
+    v_re: &[f64],
+    v_im: &[f64],
+    i_re: &[f64],
+    i_im: &[f64],
+) -> (Vec<f64>, Vec<f64>) {
+    let mut theta = 0.0;
+    let mut ip = Vec::with_capacity(v_re.len());
+    let mut iq = Vec::with_capacity(v_re.len());
+    for (((vr, vi), ir), ii) in v_re.iter().zip(v_im).zip(i_re).zip(i_im) {
+        if vr.hypot(*vi) > 1e-3 {
+            theta = vi.atan2(*vr);
+        }
+        let (s, c) = f64::sin_cos(theta);
+        ip.push(ir * c + ii * s);
+        iq.push(-(-ir * s + ii * c));
+    }
+    (ip, iq)
+}
+
+/// The validation of one held-out case: per signal, the reduced model and the hybrid.
+#[derive(Debug, Clone)]
+pub struct CaseValidation {
+    pub name: String,
+    pub reduced: Vec<SignalComparison>,
+    pub hybrid: Vec<SignalComparison>,
+    pub reduced_outputs: OutputSeries<f64>,
+    pub hybrid_outputs: OutputSeries<f64>,
+}
+
+/// Signals compared, in order.
+pub const SIGNALS: [&str; 4] = ["p", "q", "i_p", "i_q"];
+
+fn comparisons(
+    case: &Case,
+    o: &OutputSeries<f64>,
+    windows: &WindowConfig,
+) -> Result<Vec<SignalComparison>, HybridError> {
+    let d = &case.data;
+    let (ip_ref, iq_ref) = active_reactive(&d.v_re, &d.v_im, &d.i_re, &d.i_im);
+    let (ip, iq) = active_reactive(&d.v_re, &d.v_im, &o.i_re, &o.i_im);
+    let pairs: [(&[f64], &[f64]); 4] = [(&d.p, &o.p), (&d.q, &o.q), (&ip_ref, &ip), (&iq_ref, &iq)];
+    SIGNALS
+        .iter()
+        .zip(pairs)
+        .map(|(s, (r, m))| Ok(compare_signal(s, &case.time_s, r, m, case.fault, windows)?))
+        .collect()
+}
+
+/// What the DCT step did to the residual set.
+#[derive(Debug, Clone)]
+pub struct CompressionSummary {
+    pub keep_fraction: f64,
+    /// ‖x − x̂‖/‖x‖ over the whole training residual set.
+    pub relative_error: f64,
+    /// Kept coefficient magnitudes of the first training trace's Δi_d (for the report).
+    pub example_kept: Vec<f64>,
+}
+
+/// Everything the fit produced.
+#[derive(Debug, Clone)]
+pub struct HybridOutcome {
+    pub model: ModelFile,
+    pub reduced_model: ModelFile,
+    pub training: Vec<String>,
+    pub validation: Vec<CaseValidation>,
+    pub held_out_cases: Vec<Case>,
+    pub compression: CompressionSummary,
+    pub order: usize,
+    pub rank: usize,
+    pub delays: usize,
+    pub discrete_eigenvalues: Vec<Complex64>,
+    pub stability: StabilityReport,
+    /// Real eigenvalues ≤ 0 moved to their modulus so that the continuous form exists.
+    pub moved_to_real_axis: Vec<MovedEigenvalue>,
+    /// Residuals (Δi_d) of every training case, for the heat map.
+    pub residual_rows: Vec<(String, Vec<f64>)>,
+    pub residual_time_s: Vec<f64>,
+    pub windows: WindowConfig,
+}
+
+impl HybridOutcome {
+    /// Median over held-out cases of the NRMSE (% of rating) of `signal` for the reduced model
+    /// and the hybrid.
+    pub fn median_nrmse(&self, signal: &str) -> (f64, f64) {
+        let pick = |v: &[SignalComparison]| {
+            v.iter()
+                .find(|c| c.signal == signal)
+                .map_or(f64::NAN, |c| c.nrmse_percent)
+        };
+        let r: Vec<f64> = self.validation.iter().map(|c| pick(&c.reduced)).collect();
+        let h: Vec<f64> = self.validation.iter().map(|c| pick(&c.hybrid)).collect();
+        (
+            median(&r).unwrap_or(f64::NAN),
+            median(&h).unwrap_or(f64::NAN),
+        )
+    }
+
+    /// Mean over held-out cases and the four signals of the NRMSE (%): reduced, hybrid.
+    pub fn mean_nrmse(&self) -> (f64, f64) {
+        let mean = |f: &dyn Fn(&CaseValidation) -> &Vec<SignalComparison>| {
+            let all: Vec<f64> = self
+                .validation
+                .iter()
+                .flat_map(|c| f(c).iter().map(|s| s.nrmse_percent))
+                .collect();
+            all.iter().sum::<f64>() / all.len().max(1) as f64
+        };
+        (mean(&|c| &c.reduced), mean(&|c| &c.hybrid))
+    }
+
+    /// Whether every held-out case and signal of the hybrid is within tolerance.
+    pub fn passes(&self) -> bool {
+        self.validation
+            .iter()
+            .all(|c| c.hybrid.iter().all(|s| s.within_tolerance))
+    }
+}
+
+/// A model file of the physics with the given correction.
+fn model_file(
+    name: &str,
+    template: &Template,
+    step_s: f64,
+    correction: Correction,
+    bases: Bases,
+    cases: &[&Case],
+) -> ModelFile {
+    let fold = |f: &dyn Fn(&Case) -> Vec<f64>| {
+        cases
+            .iter()
+            .flat_map(|c| f(c))
+            .fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), v| {
+                (lo.min(v), hi.max(v))
+            })
+    };
+    let (u_min, u_max) = fold(&|c| {
+        c.data
+            .v_re
+            .iter()
+            .zip(&c.data.v_im)
+            .map(|(a, b)| a.hypot(*b))
+            .collect()
+    });
+    let (f_min, f_max) = fold(&|c| c.data.f_grid.clone().unwrap_or_else(|| vec![1.0]));
+    let (p_min, p_max) = fold(&|c| vec![c.data.p[0]]);
+    let (q_min, q_max) = fold(&|c| vec![c.data.q[0]]);
+    let first = cases[0];
+    ModelFile {
+        format: HYBRID_MODEL_FORMAT.into(),
+        name: name.into(),
+        description: format!(
+            "Hybrid surrogate: reduced physics `{}` + linear correction of order {}",
+            template.name,
+            correction.order()
+        ),
+        model: ModelKind::Hybrid {
+            template: template.clone(),
+            internal_step_s: step_s,
+            correction,
+            operating_range: OperatingRange {
+                p_min,
+                p_max,
+                q_min,
+                q_max,
+            },
+        },
+        bases,
+        envelope: Envelope {
+            u_min,
+            u_max: u_max.max(u_min + 1e-6),
+            // a frequency range of zero width (no frequency recorded) is widened slightly
+            f_min: f_min.min(1.0 - 1e-3),
+            f_max: f_max.max(1.0 + 1e-3),
+        },
+        start: StartValues {
+            inputs: first.inputs(0),
+            setpoints: Setpoints {
+                p_ref: first.data.p[0],
+                q_ref: first.data.q[0],
+            },
+        },
+        communication_step_s: step_s,
+    }
+}
+
+/// Fit the hybrid surrogate on `traces` (name-sorted here) and validate it on the held-out
+/// ones. `progress` receives a line per stage.
+pub fn fit_hybrid(
+    traces: &[(String, Trace)],
+    physics: &Physics,
+    config: &HybridConfig,
+    mut progress: impl FnMut(&str),
+) -> Result<HybridOutcome, HybridError> {
+    let mut sorted: Vec<&(String, Trace)> = traces.iter().collect();
+    sorted.sort_by(|a, b| a.0.cmp(&b.0));
+    let cases: Vec<Case> = sorted
+        .iter()
+        .map(|(n, t)| Case::from_trace(t, n))
+        .collect::<Result<_, _>>()?;
+    let split = held_out_split(cases.len(), config.held_out_fraction)?;
+    let step_s = cases[0].data.step_s;
+    for c in &cases {
+        if (c.data.step_s - step_s).abs() > 1e-9 * step_s {
+            return Err(HybridError::BadTrace {
+                trace: c.name.clone(),
+                message: format!(
+                    "sample step {} s differs from the first trace's {step_s} s",
+                    c.data.step_s
+                ),
+            });
+        }
+    }
+    let training: Vec<&Case> = split.training.iter().map(|&i| &cases[i]).collect();
+    let held_out: Vec<Case> = split.held_out.iter().map(|&i| cases[i].clone()).collect();
+    let meta = &sorted[0].1.meta;
+    let bases = Bases {
+        s_base_mva: meta.s_base_mva,
+        v_base_kv: meta.v_base_kv,
+    };
+
+    progress(&format!(
+        "physics: {} training, {} held-out traces",
+        training.len(),
+        held_out.len()
+    ));
+    let training_data: Vec<FitTrace> = training.iter().map(|c| c.data.clone()).collect();
+    let template = physics_template(physics, &training_data, config)?;
+    let reduced_model = model_file(
+        "reduced",
+        &template,
+        step_s,
+        Correction::none(),
+        bases,
+        &training,
+    );
+
+    progress("residuals: detailed − physics on the training traces");
+    let residuals: Vec<[Vec<f64>; 2]> = training
+        .par_iter()
+        .map(|c| {
+            let o = evaluate(&reduced_model, c)?;
+            let pf = c.pre_fault();
+            let mut rd = Vec::with_capacity(c.data.len());
+            let mut rq = Vec::with_capacity(c.data.len());
+            for k in 0..c.data.len() {
+                let (d, q) =
+                    pf.from_network(c.data.i_re[k] - o.i_re[k], c.data.i_im[k] - o.i_im[k]);
+                rd.push(d);
+                rq.push(q);
+            }
+            for (signal, r) in [("delta_i_d", &rd), ("delta_i_q", &rq)] {
+                if let Some(index) = r.iter().position(|v| !v.is_finite()) {
+                    return Err(HybridError::NonFiniteResidual {
+                        trace: c.name.clone(),
+                        signal,
+                        index,
+                    });
+                }
+            }
+            Ok([rd, rq])
+        })
+        .collect::<Result<_, HybridError>>()?;
+
+    progress(&format!(
+        "compressed sensing: DCT keeping {:.1} % of coefficients",
+        100.0 * config.keep_fraction
+    ));
+    let mut err2 = 0.0;
+    let mut norm2 = 0.0;
+    let mut example_kept = Vec::new();
+    let mut compressed: Vec<[Vec<f64>; 2]> = Vec::with_capacity(residuals.len());
+    for (ci, r) in residuals.iter().enumerate() {
+        let mut pair: [Vec<f64>; 2] = [Vec::new(), Vec::new()];
+        for (ch, (signal, slot)) in r.iter().zip(pair.iter_mut()).enumerate() {
+            let c = compress(signal, config.keep_fraction)?;
+            err2 += signal
+                .iter()
+                .zip(&c.reconstruction)
+                .map(|(a, b)| (a - b) * (a - b))
+                .sum::<f64>();
+            norm2 += signal.iter().map(|a| a * a).sum::<f64>();
+            if ci == 0 && ch == 0 {
+                example_kept = c.kept_values.iter().map(|v| v.abs()).collect();
+            }
+            *slot = c.reconstruction;
+        }
+        compressed.push(pair);
+    }
+    let compression = CompressionSummary {
+        keep_fraction: config.keep_fraction,
+        relative_error: if norm2 > 0.0 {
+            (err2 / norm2).sqrt()
+        } else {
+            0.0
+        },
+        example_kept,
+    };
+
+    progress(&format!(
+        "DMD with control: {} delays, rank {:?}",
+        config.delays, config.rank
+    ));
+    // one snapshot matrix of all training traces, side by side; the one spurious transition
+    // between two traces joins a settled end (residual and input near 0) to a steady start
+    // (exactly 0), so it carries almost nothing
+    let mut states: Vec<DMatrix<f64>> = Vec::new();
+    let mut inputs: Vec<DMatrix<f64>> = Vec::new();
+    for (c, r) in training.iter().zip(&compressed) {
+        let n = c.data.len();
+        let series = DMatrix::from_fn(2, n, |ch, k| r[ch][k]);
+        let pf = c.pre_fault();
+        let u = DMatrix::from_fn(CORRECTION_INPUTS.len(), n, |row, k| {
+            let i = c.inputs(k);
+            pf.input(i.v_re, i.v_im, i.f_grid)[row]
+        });
+        let e = delay_embed(&series, &u, config.delays, 1)?;
+        states.push(e.states);
+        inputs.push(e.inputs);
+    }
+    let concat = |ms: &[DMatrix<f64>]| {
+        let rows = ms[0].nrows();
+        let cols: usize = ms.iter().map(|m| m.ncols()).sum();
+        let mut out = DMatrix::zeros(rows, cols);
+        let mut at = 0;
+        for m in ms {
+            out.columns_mut(at, m.ncols()).copy_from(m);
+            at += m.ncols();
+        }
+        out
+    };
+    let snapshots = concat(&states);
+    let input_matrix = concat(&inputs);
+    let dmd_config = DmdConfig::default()
+        .with_rank(config.rank)?
+        .with_stability_margin(config.stability_margin)?
+        .with_enforce_stability(config.enforce_stability);
+    let fit = fit_dmdc(&snapshots, &input_matrix, step_s, &dmd_config)?;
+    if !config.enforce_stability && fit.stability.spectral_radius > 1.0 {
+        return Err(HybridError::Unstable {
+            radius: fit.stability.spectral_radius,
+        });
+    }
+    // a real eigenvalue ≤ 0 has no continuous-time counterpart at this sample step: it is
+    // moved to its modulus (same decay, no sign flip every sample) and reported
+    let (discrete, moved_to_real_axis) = fit.model.without_negative_real(1e-3)?;
+    let continuous = discrete.to_continuous()?;
+    let newest = (config.delays - 1) * 2..config.delays * 2;
+    let c_out = continuous.c.rows(newest.start, newest.len()).into_owned();
+    let correction = Correction {
+        a: rows_of(&continuous.a),
+        b: rows_of(&continuous.b),
+        c: rows_of(&c_out),
+    };
+    let order = correction.order();
+    let model = model_file("hybrid", &template, step_s, correction, bases, &training);
+    model.validate().map_err(|source| HybridError::Runtime {
+        trace: "(model file)".into(),
+        source,
+    })?;
+
+    progress(&format!(
+        "validation: {} held-out traces through the runtime",
+        held_out.len()
+    ));
+    let validation: Vec<CaseValidation> = held_out
+        .par_iter()
+        .map(|c| {
+            let reduced_outputs = evaluate(&reduced_model, c)?;
+            let hybrid_outputs = evaluate(&model, c)?;
+            Ok(CaseValidation {
+                name: c.name.clone(),
+                reduced: comparisons(c, &reduced_outputs, &config.windows)?,
+                hybrid: comparisons(c, &hybrid_outputs, &config.windows)?,
+                reduced_outputs,
+                hybrid_outputs,
+            })
+        })
+        .collect::<Result<_, HybridError>>()?;
+
+    let residual_rows = training
+        .iter()
+        .zip(&residuals)
+        .map(|(c, r)| (c.name.clone(), r[0].clone()))
+        .collect();
+    Ok(HybridOutcome {
+        model,
+        reduced_model,
+        training: training.iter().map(|c| c.name.clone()).collect(),
+        validation,
+        held_out_cases: held_out,
+        compression,
+        order,
+        rank: fit.rank,
+        delays: config.delays,
+        discrete_eigenvalues: discrete.eigenvalues()?,
+        moved_to_real_axis,
+        stability: fit.stability,
+        residual_rows,
+        residual_time_s: training[0].time_s.clone(),
+        windows: config.windows,
+    })
+}
