@@ -1,6 +1,6 @@
 use std::path::{Path, PathBuf};
 use understudy::hybrid::{
-    fit_hybrid, read_reduced, write_report, HybridConfig, HybridError, Physics,
+    fit_hybrid, read_reduced, write_report_with, HybridConfig, HybridError, Physics,
 };
 use understudy::signal::trace::read_folder;
 use understudy::Error;
@@ -12,6 +12,7 @@ pub struct Request {
     pub out: PathBuf,
     pub held_out: f64,
     pub keep_fraction: f64,
+    pub no_reduce: bool,
     pub quiet: bool,
 }
 
@@ -41,17 +42,44 @@ pub fn run(req: Request) -> Result<i32, Error> {
                 "a fraction in (0, 1]",
             )
         })?;
+    // the physics part: a given reduction (or template with fitted values), or the template
+    // reduced here on the same traces with the same held-out rule (written beside the model)
+    let mut reduction = None;
     let physics = match (&req.reduced, &req.template) {
-        (Some(p), _) => Physics::Reduced(read_reduced(p).map_err(map)?),
-        (None, Some(t)) => {
-            Physics::FitTemplate(understudy::greybox::read_template(t).map_err(|e| {
-                Error::BadFile {
+        (Some(p), _) => {
+            reduction = understudy::reduce::read_reduced(p).ok();
+            Physics::Reduced(read_reduced(p).map_err(map)?)
+        }
+        (None, template_path) => {
+            let template = match template_path {
+                Some(t) => understudy::greybox::read_template(t).map_err(|e| Error::BadFile {
                     path: t.clone(),
                     message: e.to_string(),
+                })?,
+                None => understudy::greybox::generic_converter(),
+            };
+            if req.no_reduce {
+                Physics::FitTemplate(template)
+            } else {
+                let file = super::reduce::reduce_folder(
+                    &req.traces,
+                    &template,
+                    template_path.as_deref(),
+                    req.held_out,
+                    &understudy::reduce::ReductionConfig::default(),
+                    req.quiet,
+                )?;
+                let path = reduced_path(&req.out);
+                understudy::reduce::write_reduced(&path, &file)
+                    .map_err(|e| Error::Failed(e.to_string()))?;
+                if !req.quiet {
+                    eprintln!("fit: reduced physics written to {}", path.display());
                 }
-            })?)
+                let template = file.template.clone();
+                reduction = Some(file);
+                Physics::Reduced(template)
+            }
         }
-        (None, None) => Physics::FitTemplate(understudy::greybox::generic_converter()),
     };
     let traces: Vec<(String, understudy::signal::trace::Trace)> = read_folder(&req.traces)?
         .into_iter()
@@ -84,7 +112,7 @@ pub fn run(req: Request) -> Result<i32, Error> {
     understudy::atomic::write_atomic(&req.out, outcome.model.to_json().as_bytes())
         .map_err(|e| Error::io(&req.out, e))?;
     let report = report_path(&req.out);
-    write_report(&outcome, &report).map_err(|e| Error::io(&report, e))?;
+    write_report_with(&outcome, reduction.as_ref(), &report).map_err(|e| Error::io(&report, e))?;
     let (mean_reduced, mean_hybrid) = outcome.mean_nrmse();
     let (p_red, p_hyb) = outcome.median_nrmse("p");
     let (q_red, q_hyb) = outcome.median_nrmse("q");
@@ -112,6 +140,14 @@ pub fn run(req: Request) -> Result<i32, Error> {
         println!("validation FAILED: some held-out cases are outside the tolerance (see the report's error table)");
         Ok(1)
     }
+}
+
+/// `<stem>.reduced.json` next to the model file: the reduction `fit` made.
+pub fn reduced_path(out: &Path) -> PathBuf {
+    let stem = out
+        .file_stem()
+        .map_or_else(|| "model".into(), |s| s.to_string_lossy().into_owned());
+    out.with_file_name(format!("{stem}.reduced.json"))
 }
 
 /// `report.html` next to the model file.

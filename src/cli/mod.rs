@@ -124,6 +124,9 @@ pub enum Command {
         /// Fraction of DCT coefficients kept per residual trace, in (0, 1].
         #[arg(long, default_value = "0.05")]
         keep_fraction: f64,
+        /// Fit the template as it is, without reducing it first.
+        #[arg(long)]
+        no_reduce: bool,
         /// No progress lines, only the summary.
         #[arg(long)]
         quiet: bool,
@@ -246,6 +249,7 @@ pub fn run(cli: Cli) -> Result<i32, Error> {
             out,
             held_out,
             keep_fraction,
+            no_reduce,
             quiet,
         } => fit::run(fit::Request {
             traces,
@@ -254,6 +258,7 @@ pub fn run(cli: Cli) -> Result<i32, Error> {
             out,
             held_out,
             keep_fraction,
+            no_reduce,
             quiet,
         }),
         Command::Simulate {

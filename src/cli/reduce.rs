@@ -83,19 +83,20 @@ fn config(req: &Request) -> Result<ReductionConfig, Error> {
     Ok(c)
 }
 
-pub fn run(req: Request) -> Result<i32, Error> {
-    let config = config(&req)?;
-    let template = match &req.template {
-        Some(p) => read_template(p).map_err(|e| Error::BadFile {
-            path: p.clone(),
-            message: e.to_string(),
-        })?,
-        None => generic_converter(),
-    };
-    let traces = load_traces(&req.traces)?;
-    let (training, held_out, split) = split_traces(traces, req.held_out)
-        .map_err(|e| Error::bad_input("--held-out", req.held_out.to_string(), e.to_string()))?;
-    let quiet = req.quiet;
+/// Reduce `template` on the traces in `traces_dir` (split by the shared held-out rule),
+/// showing progress on stderr unless `quiet`: the reduced file, not yet written.
+pub fn reduce_folder(
+    traces_dir: &Path,
+    template: &understudy::runtime::block::Template,
+    template_path: Option<&Path>,
+    held_out_fraction: f64,
+    config: &ReductionConfig,
+    quiet: bool,
+) -> Result<ReducedFile, Error> {
+    let traces = load_traces(traces_dir)?;
+    let (training, held_out, split) = split_traces(traces, held_out_fraction).map_err(|e| {
+        Error::bad_input("--held-out", held_out_fraction.to_string(), e.to_string())
+    })?;
     if !quiet {
         eprintln!(
             "reducing `{}` on {} training traces ({} held out)…",
@@ -104,7 +105,7 @@ pub fn run(req: Request) -> Result<i32, Error> {
             held_out.len()
         );
     }
-    let outcome = reduce_template(&template, &training, &held_out, &config, |event| {
+    let outcome = reduce_template(template, &training, &held_out, config, |event| {
         if quiet {
             return;
         }
@@ -129,19 +130,37 @@ pub fn run(req: Request) -> Result<i32, Error> {
     })
     .map_err(|e| match &e {
         ReductionError::Template { .. } => Error::BadFile {
-            path: req
-                .template
-                .clone()
+            path: template_path
+                .map(Path::to_path_buf)
                 .unwrap_or_else(|| PathBuf::from("(built-in template)")),
             message: e.to_string(),
         },
         e if e.is_bad_input() => Error::BadFile {
-            path: req.traces.clone(),
+            path: traces_dir.to_path_buf(),
             message: e.to_string(),
         },
         e => Error::Failed(e.to_string()),
     })?;
-    let file = ReducedFile::new(outcome, split, &config);
+    Ok(ReducedFile::new(outcome, split, config))
+}
+
+pub fn run(req: Request) -> Result<i32, Error> {
+    let config = config(&req)?;
+    let template = match &req.template {
+        Some(p) => read_template(p).map_err(|e| Error::BadFile {
+            path: p.clone(),
+            message: e.to_string(),
+        })?,
+        None => generic_converter(),
+    };
+    let file = reduce_folder(
+        &req.traces,
+        &template,
+        req.template.as_deref(),
+        req.held_out,
+        &config,
+        req.quiet,
+    )?;
     let log = write_reduced(&req.out, &file).map_err(|e| Error::Failed(e.to_string()))?;
     let free =
         |t: &understudy::runtime::block::Template| t.parameters.iter().filter(|p| !p.fixed).count();

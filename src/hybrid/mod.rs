@@ -13,7 +13,7 @@
 
 mod report;
 
-pub use report::write_report;
+pub use report::{write_report, write_report_with};
 
 use crate::fit::{LevenbergMarquardt, LmConfig};
 use crate::greybox::{FitTrace, GreyboxError, SignalWeights, TemplateFit};

@@ -1,6 +1,8 @@
 //! The hybrid's validation report (self-contained HTML, written atomically).
 
 use super::HybridOutcome;
+use crate::reduce::reduction::{fisher_spectrum_svg, geodesic_path_svg};
+use crate::reduce::ReducedFile;
 use crate::validate::metrics::Window;
 use crate::validate::plot::{eigenvalue_plot, heat_map, line_chart, log_spectrum, Series};
 use crate::validate::report::{Report, CAUTION};
@@ -8,6 +10,16 @@ use std::path::Path;
 
 /// Write `report.html` for `outcome` to `path` (atomically).
 pub fn write_report(outcome: &HybridOutcome, path: &Path) -> std::io::Result<()> {
+    write_report_with(outcome, None, path)
+}
+
+/// As [`write_report`], with the reduction that made the physics part (its log, the Fisher
+/// eigen-spectra and the geodesic parameter paths) when there was one.
+pub fn write_report_with(
+    outcome: &HybridOutcome,
+    reduction: Option<&ReducedFile>,
+    path: &Path,
+) -> std::io::Result<()> {
     let mut r = Report::new("understudy — hybrid surrogate validation");
     r.paragraph(CAUTION);
     let (mean_reduced, mean_hybrid) = outcome.mean_nrmse();
@@ -227,6 +239,67 @@ pub fn write_report(outcome: &HybridOutcome, path: &Path) -> std::io::Result<()>
             &["case", "signal", "window", "ME", "MAE", "MXE"],
             &windows_rows,
         );
+    if let Some(red) = reduction {
+        reduction_section(&mut r, red);
+    }
     r.paragraph(CAUTION);
     crate::atomic::write_atomic(path, r.to_html().as_bytes())
+}
+
+/// The reduction behind the physics part: each step in words, its Fisher eigen-spectrum (the
+/// sloppiness picture) and the parameters along the geodesic that reached the boundary.
+fn reduction_section(r: &mut Report, red: &ReducedFile) {
+    r.heading("Reduction of the physics (manifold boundary approximation)");
+    r.paragraph(&format!(
+        "Template `{}` reduced to {} free parameters ({} states); stopped: {}",
+        red.full_template.name,
+        red.template.parameters.iter().filter(|p| !p.fixed).count(),
+        red.template.state_count(),
+        red.stop.describe()
+    ));
+    let rows: Vec<Vec<String>> = red
+        .steps
+        .iter()
+        .map(|s| {
+            vec![
+                s.index.to_string(),
+                s.sentence.clone(),
+                if s.accepted { "kept" } else { "not kept" }.to_string(),
+                format!("{} → {}", s.parameters_before, s.parameters_after),
+                format!("{} → {}", s.states_before, s.states_after),
+                format!(
+                    "{:.2} / {:.2}",
+                    100.0 * s.errors_after.held_out.p,
+                    100.0 * s.errors_after.held_out.q
+                ),
+            ]
+        })
+        .collect();
+    r.table(
+        &[
+            "step",
+            "limit taken",
+            "verdict",
+            "parameters",
+            "states",
+            "held-out NRMSE P / Q (%)",
+        ],
+        &rows,
+    );
+    for s in red.steps.iter().filter(|s| s.accepted) {
+        r.figure(
+            &fisher_spectrum_svg(s),
+            &format!(
+                "Step {}: eigenvalues of the Fisher information JᵀJ in log-parameters before the step.",
+                s.index
+            ),
+        );
+        r.figure(
+            &geodesic_path_svg(s),
+            &format!(
+                "Step {}: log-parameters along the geodesic that reached the boundary.",
+                s.index
+            ),
+        );
+    }
 }
