@@ -343,5 +343,28 @@ mod tests {
         // at the pre-fault voltage every input is zero
         let v = (1.02 * 0.6f64.cos(), 1.02 * 0.6f64.sin());
         assert!(pf.input(v.0, v.1, 1.0).iter().all(|x| x.abs() < 1e-15));
+        // the dip depth below 0.9 pu at |v| = 0.5: 0.4 (hand calculation)
+        let dip = pf.input(0.5 * 0.6f64.cos(), 0.5 * 0.6f64.sin(), 1.0)[5];
+        assert!((dip - 0.4).abs() < 1e-15, "{dip}");
+    }
+
+    #[test]
+    fn output_adds_the_feedthrough_and_an_empty_d_is_zero() {
+        let mut corr = Correction {
+            a: vec![vec![-10.0]],
+            b: vec![vec![10.0, 0.0, 0.0, 0.0, 0.0, 0.0]],
+            c: vec![vec![1.0], vec![2.0]],
+            d: Vec::new(),
+        };
+        let u = [0.5, 0.0, 0.0, 0.0, 0.0, 1.0];
+        let s = CorrectionStepper::new(&corr).unwrap();
+        assert_eq!(s.output(&[0.25], &u), (0.25, 0.5));
+        corr.d = vec![vec![0.0; 6], vec![0.0, 0.0, 0.0, 0.0, 0.0, 3.0]];
+        let s = CorrectionStepper::new(&corr).unwrap();
+        assert_eq!(s.output(&[0.25], &u), (0.25, 3.5));
+        // a D of the wrong shape names the matrix
+        corr.d = vec![vec![0.0; 5], vec![0.0; 5]];
+        let e = CorrectionStepper::new(&corr).unwrap_err();
+        assert_eq!(e.matrix, "d");
     }
 }

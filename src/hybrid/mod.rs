@@ -5,8 +5,11 @@
 //! Steps: physics template (the reduction's result, or an LM fit of a template) → residuals
 //! (detailed − physics, as current in the pre-fault voltage frame, see
 //! `understudy_runtime::correction`) → DCT compression of the residual set (kept fraction and
-//! reconstruction error reported) → DMD with control on the delay-embedded compressed residuals,
-//! driven by the correction's inputs → stability enforced → continuous time → model file.
+//! reconstruction error reported; for the report only: at 5 % it loses too much to fit on) →
+//! DMD with control on the delay-embedded raw residuals, driven by the correction's inputs →
+//! stability enforced → its poles in continuous time → a modal realisation per input whose
+//! output map (C, D) is fitted for free run on states simulated by the runtime's own stepper
+//! (see [`free_run_correction`]) → model file.
 //! Per unit on the unit rating throughout.
 
 #![deny(clippy::float_cmp)]
@@ -188,7 +191,7 @@ impl HybridConfig {
     /// Ridge weight of the output-map fit, relative to the mean diagonal of the (scaled) normal
     /// matrix, in [0, 1).
     pub fn with_ridge(mut self, r: f64) -> Result<Self, HybridError> {
-        if !(r >= 0.0 && r < 1.0) {
+        if !(0.0..1.0).contains(&r) {
             return Err(HybridError::Setting {
                 setting: "ridge",
                 value: r,
@@ -804,10 +807,7 @@ fn free_run_correction(
     residuals: &[[Vec<f64>; 2]],
     ridge: f64,
 ) -> Result<Correction, HybridError> {
-    let block: usize = poles
-        .iter()
-        .map(|p| if p.im == 0.0 { 1 } else { 2 })
-        .sum();
+    let block: usize = poles.iter().map(|p| if p.im == 0.0 { 1 } else { 2 }).sum();
     let n = block * N_INPUTS;
     let mut a = DMatrix::zeros(n, n);
     let mut b = DMatrix::zeros(n, N_INPUTS);
@@ -891,10 +891,7 @@ fn free_run_correction(
     }
     let theta_scaled = g
         .cholesky()
-        .ok_or(HybridError::OutputMap {
-            features: p,
-            ridge,
-        })?
+        .ok_or(HybridError::OutputMap { features: p, ridge })?
         .solve(&(&s * &rhs));
     let theta = &s * theta_scaled; // p × outputs
     let c = theta.rows(0, n).transpose();
