@@ -1,7 +1,7 @@
 //! The data-driven correction of the hybrid surrogate: a continuous-time linear system
 //!
 //! ```text
-//! dz/dt = A z + B u,    Δy = C z
+//! dz/dt = A z + B u,    Δy = C z + D u
 //! ```
 //!
 //! stepped exactly over any host step h by its zero-order-hold discretisation
@@ -11,8 +11,13 @@
 //! Input u (all relative to the pre-fault operating point fixed at initialisation, so a model at
 //! its steady state sees u = 0 and keeps z = 0): the terminal voltage in the frame of the
 //! pre-fault voltage angle θ₀ minus its pre-fault value, (v_d − |v₀|, v_q), the grid frequency
-//! minus its pre-fault value, and the voltage-magnitude deviation scaled by the pre-fault active
-//! and reactive power (so one linear system serves different operating points).
+//! minus its pre-fault value, the voltage-magnitude deviation scaled by the pre-fault active
+//! and reactive power (so one linear system serves different operating points), and the dip
+//! depth below 0.9 pu, max(0, 0.9 − |v|), minus its pre-fault value. Why the dip depth: a
+//! converter changes its behaviour when the voltage falls below its ride-through threshold
+//! (current limits, reactive-current injection; 0.9 pu is the usual threshold, common practice in
+//! grid codes), which a linear function of the voltage cannot express; given as an input
+//! feature computed from the terminal voltage, the correction stays a linear system.
 //!
 //! Output Δy: the correction of the injected current (Δi_d, Δi_q) in the same pre-fault frame.
 //! Why the current and why that frame: the frame is fixed, so the correction does not depend on
@@ -25,13 +30,20 @@ use nalgebra::DMatrix;
 use serde::{Deserialize, Serialize};
 
 /// The inputs of the correction, in order (see the module doc).
-pub const CORRECTION_INPUTS: [&str; 5] = [
+pub const CORRECTION_INPUTS: [&str; 6] = [
     "v_d - |v0|",
     "v_q",
     "f_grid - f0",
     "p0 * (|v| - |v0|)",
     "q0 * (|v| - |v0|)",
+    "max(0, 0.9 - |v|) - max(0, 0.9 - |v0|)",
 ];
+
+/// Number of correction inputs.
+pub const N_INPUTS: usize = CORRECTION_INPUTS.len();
+
+/// Ride-through threshold of the dip-depth input (pu; 0.9 pu, common practice in grid codes).
+pub const DIP_THRESHOLD_PU: f64 = 0.9;
 
 /// The outputs of the correction, in order: current in the pre-fault voltage frame (pu).
 pub const CORRECTION_OUTPUTS: [&str; 2] = ["delta_i_d", "delta_i_q"];
@@ -49,18 +61,22 @@ pub struct PreFault {
 
 impl PreFault {
     /// The correction's input vector for terminal voltage (v_re, v_im) and frequency f_grid.
-    pub fn input(&self, v_re: f64, v_im: f64, f_grid: f64) -> [f64; 5] {
+    /// THE one definition, used by the tool when fitting and by the runtime when stepping.
+    pub fn input(&self, v_re: f64, v_im: f64, f_grid: f64) -> [f64; N_INPUTS] {
         let (s, c) = self.theta0.sin_cos();
         // v·e^{−jθ₀}
         let v_d = v_re * c + v_im * s;
         let v_q = -v_re * s + v_im * c;
-        let du = v_re.hypot(v_im) - self.u0;
+        let u = v_re.hypot(v_im);
+        let du = u - self.u0;
+        let dip = |x: f64| (DIP_THRESHOLD_PU - x).max(0.0);
         [
             v_d - self.u0,
             v_q,
             f_grid - self.f0,
             self.p0 * du,
             self.q0 * du,
+            dip(u) - dip(self.u0),
         ]
     }
 
@@ -83,14 +99,17 @@ impl PreFault {
 pub struct Correction {
     /// A: order × order (1/s).
     pub a: Vec<Vec<f64>>,
-    /// B: order × 5 (1/s), columns as [`CORRECTION_INPUTS`].
+    /// B: order × inputs (1/s), columns as [`CORRECTION_INPUTS`].
     pub b: Vec<Vec<f64>>,
     /// C: 2 × order, rows as [`CORRECTION_OUTPUTS`].
     pub c: Vec<Vec<f64>>,
+    /// D: 2 × inputs (direct feedthrough); absent (empty) means zero.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub d: Vec<Vec<f64>>,
 }
 
-/// The checked (A, B, C) of a correction.
-pub type Matrices = (DMatrix<f64>, DMatrix<f64>, DMatrix<f64>);
+/// The checked (A, B, C, D) of a correction.
+pub type Matrices = (DMatrix<f64>, DMatrix<f64>, DMatrix<f64>, DMatrix<f64>);
 
 /// A correction's matrices do not fit together or are not finite.
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
@@ -140,6 +159,7 @@ impl Correction {
             a: Vec::new(),
             b: Vec::new(),
             c: vec![Vec::new(), Vec::new()],
+            d: Vec::new(),
         }
     }
 
@@ -147,13 +167,20 @@ impl Correction {
         self.a.len()
     }
 
-    /// The checked matrices (A, B, C).
+    /// The checked matrices (A, B, C, D); an empty D is zero.
     pub fn matrices(&self) -> Result<Matrices, CorrectionError> {
         let n = self.order();
+        let (outputs, inputs) = (CORRECTION_OUTPUTS.len(), N_INPUTS);
+        let d = if self.d.is_empty() {
+            DMatrix::zeros(outputs, inputs)
+        } else {
+            to_matrix("d", &self.d, outputs, inputs)?
+        };
         Ok((
             to_matrix("a", &self.a, n, n)?,
-            to_matrix("b", &self.b, n, CORRECTION_INPUTS.len())?,
-            to_matrix("c", &self.c, CORRECTION_OUTPUTS.len(), n)?,
+            to_matrix("b", &self.b, n, inputs)?,
+            to_matrix("c", &self.c, outputs, n)?,
+            d,
         ))
     }
 }
@@ -224,17 +251,19 @@ pub struct CorrectionStepper {
     a: DMatrix<f64>,
     b: DMatrix<f64>,
     c: DMatrix<f64>,
+    d: DMatrix<f64>,
     /// (h, Φ, Γ) of the last step size
     cache: Option<(f64, DMatrix<f64>, DMatrix<f64>)>,
 }
 
 impl CorrectionStepper {
     pub fn new(correction: &Correction) -> Result<Self, CorrectionError> {
-        let (a, b, c) = correction.matrices()?;
+        let (a, b, c, d) = correction.matrices()?;
         Ok(Self {
             a,
             b,
             c,
+            d,
             cache: None,
         })
     }
@@ -244,7 +273,7 @@ impl CorrectionStepper {
     }
 
     /// z ← Φ(h) z + Γ(h) u: exact for an input held over the step.
-    pub fn step(&mut self, z: &mut [f64], u: &[f64; 5], h_s: f64) {
+    pub fn step(&mut self, z: &mut [f64], u: &[f64; N_INPUTS], h_s: f64) {
         let n = self.order();
         assert_eq!(z.len(), n, "correction state length");
         if n == 0 {
@@ -262,12 +291,12 @@ impl CorrectionStepper {
         z.copy_from_slice(next.as_slice());
     }
 
-    /// Δy = C z: (Δi_d, Δi_q) in the pre-fault frame.
-    pub fn output(&self, z: &[f64]) -> (f64, f64) {
-        if self.order() == 0 {
-            return (0.0, 0.0);
+    /// Δy = C z + D u: (Δi_d, Δi_q) in the pre-fault frame.
+    pub fn output(&self, z: &[f64], u: &[f64; N_INPUTS]) -> (f64, f64) {
+        let mut y = &self.d * nalgebra::DVector::from_column_slice(u);
+        if self.order() > 0 {
+            y += &self.c * nalgebra::DVector::from_column_slice(z);
         }
-        let y = &self.c * nalgebra::DVector::from_column_slice(z);
         (y[0], y[1])
     }
 }
@@ -314,5 +343,28 @@ mod tests {
         // at the pre-fault voltage every input is zero
         let v = (1.02 * 0.6f64.cos(), 1.02 * 0.6f64.sin());
         assert!(pf.input(v.0, v.1, 1.0).iter().all(|x| x.abs() < 1e-15));
+        // the dip depth below 0.9 pu at |v| = 0.5: 0.4 (hand calculation)
+        let dip = pf.input(0.5 * 0.6f64.cos(), 0.5 * 0.6f64.sin(), 1.0)[5];
+        assert!((dip - 0.4).abs() < 1e-15, "{dip}");
+    }
+
+    #[test]
+    fn output_adds_the_feedthrough_and_an_empty_d_is_zero() {
+        let mut corr = Correction {
+            a: vec![vec![-10.0]],
+            b: vec![vec![10.0, 0.0, 0.0, 0.0, 0.0, 0.0]],
+            c: vec![vec![1.0], vec![2.0]],
+            d: Vec::new(),
+        };
+        let u = [0.5, 0.0, 0.0, 0.0, 0.0, 1.0];
+        let s = CorrectionStepper::new(&corr).unwrap();
+        assert_eq!(s.output(&[0.25], &u), (0.25, 0.5));
+        corr.d = vec![vec![0.0; 6], vec![0.0, 0.0, 0.0, 0.0, 0.0, 3.0]];
+        let s = CorrectionStepper::new(&corr).unwrap();
+        assert_eq!(s.output(&[0.25], &u), (0.25, 3.5));
+        // a D of the wrong shape names the matrix
+        corr.d = vec![vec![0.0; 5], vec![0.0; 5]];
+        let e = CorrectionStepper::new(&corr).unwrap_err();
+        assert_eq!(e.matrix, "d");
     }
 }

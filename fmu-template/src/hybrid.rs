@@ -1,6 +1,6 @@
 //! The hybrid surrogate in co-simulation: reduced block-model physics plus the linear
 //! correction ([`crate::correction`]). Output = physics output + correction output; the current
-//! correction is rotated to the network frame and P, Q follow from S = v·conj(i).
+//! correction (C z + D u, u from the present inputs) is rotated to the network frame and P, Q follow from S = v·conj(i).
 //!
 //! The block model runs at its own internal step (`internal_step_s`, the step it was fitted at)
 //! with the host's input held; the correction is stepped exactly over the host's step.
@@ -169,7 +169,10 @@ impl CoSimModel for HybridCoSim {
             .ok_or(CoSimError::NotInitialised { call: "outputs" })?;
         let sim = self.simulator(&running.block)?;
         let [i_re, i_im, p, q] = sim.peek(sample(inputs));
-        let (di_d, di_q) = self.correction.output(&running.z);
+        let u = running
+            .pre_fault
+            .input(inputs.v_re, inputs.v_im, inputs.f_grid);
+        let (di_d, di_q) = self.correction.output(&running.z, &u);
         let (di_re, di_im) = running.pre_fault.to_network(di_d, di_q);
         // ΔS = v·conj(Δi): P and Q move with the corrected current
         let (v_re, v_im) = (inputs.v_re, inputs.v_im);

@@ -25,7 +25,8 @@ pub fn write_report_with(
     let (mean_reduced, mean_hybrid) = outcome.mean_nrmse();
     r.heading("Summary").paragraph(&format!(
         "Trained on {} traces, validated on {} held-out traces (never used in fitting). \
-         Correction: DMD with control on {} delays, rank {}, order {} (continuous time). \
+         Correction: poles from DMD with control on {} delays (rank {}), realised per input \
+         with its output map fitted for free run; order {} (continuous time). \
          Mean NRMSE over held-out cases and signals: reduced {:.3} %, hybrid {:.3} % of rating. \
          Verdict: {}.",
         outcome.training.len(),
@@ -44,7 +45,8 @@ pub fn write_report_with(
     r.heading("Compressed sensing").paragraph(&format!(
         "Residual set compressed with the orthonormal DCT-II keeping {:.1} % of the \
          coefficients per trace (ramp removed first); relative reconstruction error \
-         ‖x − x̂‖/‖x‖ = {:.4}.",
+         ‖x − x̂‖/‖x‖ = {:.4}. The correction is fitted on the raw residuals, not on this \
+         compression.",
         100.0 * outcome.compression.keep_fraction,
         outcome.compression.relative_error
     ));

@@ -65,8 +65,25 @@ fn outcome() -> &'static HybridOutcome {
 }
 
 #[test]
-#[ignore = "acceptance NOT met yet: on this set the correction does not improve held-out NRMSE \
-            (mean 3.44 % reduced vs 3.67 % hybrid); run with --ignored to see the figures"]
+fn hybrid_improves_on_the_reduced_model_and_meets_the_median_target() {
+    // the part of the acceptance of issue 4 (our own targets) that is met: on the held-out
+    // faults the hybrid beats the reduced model on average, and its median NRMSE of P and Q is
+    // ≤ 2 % of rating (measured: mean 3.44 % → 2.05 %, median P 1.42 %, Q 1.77 %)
+    let o = outcome();
+    let (mean_reduced, mean_hybrid) = o.mean_nrmse();
+    let (_, p_hyb) = o.median_nrmse("p");
+    let (_, q_hyb) = o.median_nrmse("q");
+    assert!(
+        mean_hybrid < 0.8 * mean_reduced,
+        "{mean_hybrid} vs {mean_reduced}"
+    );
+    assert!(p_hyb <= 2.0 && q_hyb <= 2.0, "P {p_hyb} %, Q {q_hyb} %");
+}
+
+#[test]
+#[ignore = "acceptance NOT fully met: the median target is (P 1.42 %, Q 1.77 %), but the mean \
+            held-out NRMSE drops only from 3.44 % (reduced) to 2.05 % (hybrid), ratio 0.60, \
+            not <= 0.5; run with --ignored to see the figures"]
 fn hybrid_halves_the_reduced_error_on_held_out_faults() {
     let o = outcome();
     let (mean_reduced, mean_hybrid) = o.mean_nrmse();
@@ -309,6 +326,11 @@ fn bad_input_gives_clear_errors() {
     for bad in [0.0, 1.5, f64::NAN] {
         let e = HybridConfig::default().with_keep_fraction(bad).unwrap_err();
         assert!(e.to_string().contains("keep_fraction"), "{e}");
+    }
+    // a ridge weight outside [0, 1)
+    for bad in [-1e-3, 1.0, f64::NAN] {
+        let e = HybridConfig::default().with_ridge(bad).unwrap_err();
+        assert!(e.to_string().contains("ridge"), "{e}");
     }
     // a rank larger than the data
     let few: Vec<(String, Trace)> = traces().iter().take(4).cloned().collect();
