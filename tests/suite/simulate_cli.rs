@@ -229,10 +229,17 @@ fn export_cli_writes_an_fmu_of_the_detailed_unit() {
     assert_eq!(code, 0, "{err}");
     let bytes = std::fs::read(dir.path().join("unit.fmu")).unwrap();
     assert_eq!(&bytes[..2], b"PK", "an FMU is a zip archive");
-    // FMI 3.0 is refused as bad usage and leaves nothing behind
+    // FMI 3.0 on request (checked against FMPy in fmi3.rs); an unknown version is bad usage
+    // and leaves nothing behind
     let (code, _, err) = run_cli(dir.path(), &["export", s, "--out", "v3.fmu", "--fmi", "3"]);
+    assert_eq!(code, 0, "{err}");
+    assert_eq!(
+        &std::fs::read(dir.path().join("v3.fmu")).unwrap()[..2],
+        b"PK"
+    );
+    let (code, _, err) = run_cli(dir.path(), &["export", s, "--out", "v4.fmu", "--fmi", "4"]);
     assert_eq!(code, 2, "{err}");
-    assert!(!dir.path().join("v3.fmu").exists());
+    assert!(!dir.path().join("v4.fmu").exists());
     let (code, _, err) = run_cli(
         dir.path(),
         &["export", s, "--out", "w.fmu", "--platforms", "win64"],
