@@ -199,20 +199,46 @@ pub fn run_study(
     progress: &(dyn Fn(usize, usize) + Sync),
 ) -> Result<RunSummary, Error> {
     study.validate()?;
+    run_cases(
+        study,
+        study.simulation.clone(),
+        cases,
+        redraws,
+        out_dir,
+        progress,
+        |case| {
+            let (trace, stats) = simulate_case(&study.unit, case, &study.simulation)?;
+            Ok((trace, stats.steps, stats.guard_events))
+        },
+    )
+}
+
+/// The body every trace source shares: run `cases` in parallel through `one` (a case → its
+/// trace, step count and guard-event count), write each trace to `out_dir`, then
+/// `manifest.json` with `settings` as the run's settings.
+pub(crate) fn run_cases(
+    study: &Study,
+    settings: SimulationSettings,
+    cases: &[Case],
+    redraws: usize,
+    out_dir: &Path,
+    progress: &(dyn Fn(usize, usize) + Sync),
+    one: impl Fn(&Case) -> Result<(Trace, usize, usize), Error> + Sync,
+) -> Result<RunSummary, Error> {
     std::fs::create_dir_all(out_dir).map_err(|e| Error::io(out_dir, e))?;
     let done = std::sync::atomic::AtomicUsize::new(0);
     let start = std::time::Instant::now();
     let results: Vec<Result<CaseRecord, String>> = cases
         .par_iter()
         .map(|case| {
-            let r = simulate_case(&study.unit, case, &study.simulation)
-                .and_then(|(trace, stats)| {
+            let r = one(case)
+                .and_then(|(trace, steps, guard_events)| {
                     trace.write(out_dir, &case.stem())?;
                     Ok(CaseRecord {
                         file: format!("{}.csv", case.stem()),
                         disturbance: case.disturbance.label().into(),
-                        steps: stats.steps,
-                        guard_events: stats.guard_events,
+                        steps,
+                        guard_events,
                     })
                 })
                 .map_err(|e| format!("{}: {e}", case.stem()));
@@ -225,7 +251,7 @@ pub fn run_study(
     let mut summary = RunSummary {
         study: study.name.clone(),
         unit: study.unit.clone(),
-        settings: study.simulation.clone(),
+        settings,
         seed: study.design.seed,
         redrawn_design_points: redraws,
         cases: Vec::new(),

@@ -20,10 +20,9 @@
 use crate::fmi::import::{BaseType, Fmu, ImportError, Instance};
 use crate::scenario::Case;
 use crate::signal::trace::{Trace, TraceMeta, FORMAT, STANDARD_CHANNELS};
-use crate::simulate::{CaseRecord, RunSummary};
+use crate::simulate::RunSummary;
 use crate::study::Study;
 use crate::Error;
-use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 use std::path::Path;
 use understudy_runtime::unit::{terminal_voltage_for, GridSchedule, C64};
@@ -324,58 +323,12 @@ pub fn run_study_fmu(
 ) -> Result<RunSummary, Error> {
     study.validate()?;
     let resolved = map.resolve(fmu)?;
-    std::fs::create_dir_all(out_dir).map_err(|e| Error::io(out_dir, e))?;
-    let done = std::sync::atomic::AtomicUsize::new(0);
-    let start = std::time::Instant::now();
-    let results: Vec<Result<CaseRecord, String>> = cases
-        .par_iter()
-        .map(|case| {
-            let r = simulate_case_fmu(fmu, &resolved, study, case)
-                .and_then(|(trace, stats)| {
-                    trace.write(out_dir, &case.stem())?;
-                    Ok(CaseRecord {
-                        file: format!("{}.csv", case.stem()),
-                        disturbance: case.disturbance.label().into(),
-                        // doStep calls (fixed-point passes included); no guard events are
-                        // visible through a black box
-                        steps: stats.do_step_calls,
-                        guard_events: 0,
-                    })
-                })
-                .map_err(|e| format!("{}: {e}", case.stem()));
-            let n = done.fetch_add(1, std::sync::atomic::Ordering::Relaxed) + 1;
-            progress(n, cases.len());
-            r
-        })
-        .collect();
-    let wall = start.elapsed().as_secs_f64();
     let mut settings = study.simulation.clone();
     settings.internal_signals = false;
-    let mut summary = RunSummary {
-        study: study.name.clone(),
-        unit: study.unit.clone(),
-        settings,
-        seed: study.design.seed,
-        redrawn_design_points: redraws,
-        cases: Vec::new(),
-        failures: Vec::new(),
-        simulated_seconds_per_wall_second: 0.0,
-    };
-    for r in results {
-        match r {
-            Ok(c) => summary.cases.push(c),
-            Err(e) => summary.failures.push(e),
-        }
-    }
-    summary.simulated_seconds_per_wall_second =
-        summary.cases.len() as f64 * study.simulation.duration_s / wall.max(1e-9);
-    let manifest = out_dir.join("manifest.json");
-    crate::atomic::write_atomic(
-        &manifest,
-        serde_json::to_string_pretty(&summary)
-            .expect("summary serialises")
-            .as_bytes(),
-    )
-    .map_err(|e| Error::io(&manifest, e))?;
-    Ok(summary)
+    crate::simulate::run_cases(study, settings, cases, redraws, out_dir, progress, |case| {
+        let (trace, stats) = simulate_case_fmu(fmu, &resolved, study, case)?;
+        // doStep calls (fixed-point passes included); no guard events are visible through
+        // a black box
+        Ok((trace, stats.do_step_calls, 0))
+    })
 }
