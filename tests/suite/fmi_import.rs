@@ -617,13 +617,25 @@ fn check_passes_our_fmu_and_replays_its_traces() {
             "--study",
             "study.toml",
             "--cases",
-            "2",
+            "6",
             "--out",
             "traces",
             "--quiet",
         ],
     );
     assert_eq!(code, 0, "{stderr}");
+    // the design holds at least one grid fault (the terminal voltage set by the network, with a
+    // clearing between two samples): the case the replay convention matters for
+    let faults = (1..=6)
+        .filter(|k| {
+            let side: serde_json::Value = serde_json::from_slice(
+                &std::fs::read(d.join("traces").join(format!("case_{k:04}.json"))).unwrap(),
+            )
+            .unwrap();
+            side["case"]["disturbance"]["kind"] == "fault"
+        })
+        .count();
+    assert!(faults >= 1, "no grid fault among the 6 cases");
     let (code, stdout, stderr) =
         cli_check(d, &d.join("unit.fmu"), &["--traces", "traces", "--json"]);
     let report: serde_json::Value = serde_json::from_str(&stdout).unwrap();
@@ -631,14 +643,15 @@ fn check_passes_our_fmu_and_replays_its_traces() {
     assert_eq!(checks.len(), 5, "{checks:?}");
     assert!(checks.iter().all(|c| c["outcome"] == "pass"), "{checks:?}");
     let traces = report["traces"].as_array().unwrap();
-    assert_eq!(traces.len(), 2);
+    assert_eq!(traces.len(), 6);
+    // Replayed with each sample held over its step (FMI co-simulation inputs), the FMU of the
+    // detailed model reproduces the detailed model's own traces: no finding, exit 0. Bound 2 %
+    // NRMSE per signal (common practice for a replay of the same model; measured on the demo's
+    // 24 traces: at most 1.2 % in Q; here 1.8 % in Q on case 6, from the sample in which a
+    // fault clears).
     let findings = report["findings"].as_array().unwrap();
-    // KNOWN ISSUE (unfinished): the open-loop replay of a fault trace is outside the validation
-    // tolerances (measured NRMSE up to 7.9 % in P); the exit code follows the findings.
-    assert_eq!(code, if findings.is_empty() { 0 } else { 1 }, "{stderr}");
-    for f in findings {
-        assert!(f.as_str().unwrap().starts_with("trace "), "{f}");
-    }
+    assert!(findings.is_empty(), "{findings:?}");
+    assert_eq!(code, 0, "{stderr}");
     for t in traces {
         for s in t["signals"].as_array().unwrap() {
             let nrmse = s["nrmse_percent"].as_f64().unwrap();
@@ -646,7 +659,12 @@ fn check_passes_our_fmu_and_replays_its_traces() {
                 "check replay {} {}: NRMSE {nrmse:.4} %",
                 t["file"], s["signal"]
             );
-            assert!(nrmse.is_finite());
+            assert!(
+                nrmse < 2.0,
+                "{} {}: NRMSE {nrmse} %",
+                t["file"],
+                s["signal"]
+            );
         }
     }
 }
