@@ -170,7 +170,12 @@ pub fn feasible(unit: &UnitSpec, case: &Case) -> bool {
 #[derive(Debug, Clone, Serialize, Deserialize)]
 pub struct RunSummary {
     pub study: String,
-    pub unit: UnitSpec,
+    /// Where the traces came from: the built-in detailed model, or an FMU run as a black box.
+    pub source: String,
+    /// The built-in unit's parameters (absent when the source is an FMU: its insides are not
+    /// known; the study's unit then gives only the per-unit bases and the steady-state check).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub unit: Option<UnitSpec>,
     pub settings: SimulationSettings,
     pub seed: u64,
     pub redrawn_design_points: usize,
@@ -201,6 +206,8 @@ pub fn run_study(
     study.validate()?;
     run_cases(
         study,
+        format!("built-in detailed model ({:?})", study.unit.kind),
+        Some(study.unit.clone()),
         study.simulation.clone(),
         cases,
         redraws,
@@ -215,9 +222,12 @@ pub fn run_study(
 
 /// The body every trace source shares: run `cases` in parallel through `one` (a case → its
 /// trace, step count and guard-event count), write each trace to `out_dir`, then
-/// `manifest.json` with `settings` as the run's settings.
+/// `manifest.json` with `source`, `unit` and `settings` as the run's.
+#[allow(clippy::too_many_arguments)]
 pub(crate) fn run_cases(
     study: &Study,
+    source: String,
+    unit: Option<UnitSpec>,
     settings: SimulationSettings,
     cases: &[Case],
     redraws: usize,
@@ -250,7 +260,8 @@ pub(crate) fn run_cases(
     let wall = start.elapsed().as_secs_f64();
     let mut summary = RunSummary {
         study: study.name.clone(),
-        unit: study.unit.clone(),
+        source,
+        unit,
         settings,
         seed: study.design.seed,
         redrawn_design_points: redraws,

@@ -325,10 +325,27 @@ pub fn run_study_fmu(
     let resolved = map.resolve(fmu)?;
     let mut settings = study.simulation.clone();
     settings.internal_signals = false;
-    crate::simulate::run_cases(study, settings, cases, redraws, out_dir, progress, |case| {
-        let (trace, stats) = simulate_case_fmu(fmu, &resolved, study, case)?;
-        // doStep calls (fixed-point passes included); no guard events are visible through
-        // a black box
-        Ok((trace, stats.do_step_calls, 0))
-    })
+    let d = fmu.description();
+    let source = format!(
+        "fmu:{} (model identifier {}, {}; a black box)",
+        fmu.path().display(),
+        d.co_simulation.model_identifier,
+        d.guid
+    );
+    crate::simulate::run_cases(
+        study,
+        source,
+        None,
+        settings,
+        cases,
+        redraws,
+        out_dir,
+        progress,
+        |case| {
+            let (trace, stats) = simulate_case_fmu(fmu, &resolved, study, case)?;
+            // doStep calls (fixed-point passes included); no guard events are visible through
+            // a black box
+            Ok((trace, stats.do_step_calls, 0))
+        },
+    )
 }
