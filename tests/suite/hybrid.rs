@@ -101,6 +101,12 @@ fn hybrid_halves_the_reduced_error_on_held_out_faults() {
     eprintln!("median NRMSE P: reduced {p_red:.3} %, hybrid {p_hyb:.3} %");
     eprintln!("median NRMSE Q: reduced {q_red:.3} %, hybrid {q_hyb:.3} %");
     for c in &o.validation {
+        if let Some((_, t)) = traces().iter().find(|(n, _)| *n == c.name) {
+            eprintln!(
+                "  {}: {} {}",
+                c.name, t.meta.case["disturbance"], t.meta.case["operating_point"]
+            );
+        }
         for (r, h) in c.reduced.iter().zip(&c.hybrid) {
             eprintln!(
                 "  {} {}: {:.3} → {:.3}",
