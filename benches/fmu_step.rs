@@ -1,14 +1,18 @@
-//! doStep of an exported FMU through the C ABI (FMI 3.0, loaded with libloading) at the model's
-//! natural communication step, against the detailed full-converter model's own simulation of
-//! the same fault, measured in one run.
+//! doStep of an exported FMU through the C ABI (FMI 3.0, loaded with libloading) against the
+//! detailed full-converter model's own simulation of the same fault, measured in one run.
 //!
-//! Reports: median wall time per fmi3DoStep call, simulated seconds per wall second of the FMU
-//! and of the detailed model's native simulation, and their ratio.
+//! Reports, per host communication step: median wall time per fmi3DoStep call (with the
+//! fmi3SetFloat64 of the inputs and the fmi3GetFloat64 of the four outputs a host makes every
+//! step, timed separately as "per host step"), simulated seconds per wall second of the FMU and
+//! of the detailed model's native simulation (RK4 at its 50 µs step, whatever the host's step),
+//! and their ratio. Each figure is the median of `REPEATS` runs, FMU and detailed interleaved,
+//! so a load change on a shared machine hits both sides alike.
 //!
 //! The FMU's model comes from `model_to_measure`: a model file given by
-//! `UNDERSTUDY_BENCH_MODEL=path/to/model.json` (e.g. the surrogate's), otherwise the detailed
-//! full-converter model file, so today the ratio compares the detailed model inside an FMU
-//! with the detailed model's native simulation.
+//! `UNDERSTUDY_BENCH_MODEL=path/to/model.json` (e.g. the stand-in's), otherwise the detailed
+//! full-converter model file. Host steps: `UNDERSTUDY_BENCH_STEPS=0.001,0.01` (s), default the
+//! model's natural step (its DefaultExperiment step) and 10 ms (a usual RMS simulator step,
+//! common practice).
 //!
 //! `cargo bench --bench fmu_step` measures 2 simulated seconds; under `cargo test` (no
 //! `--bench` argument) it runs a 0.3 s smoke pass.
@@ -21,6 +25,7 @@ use understudy::runtime::cosim::{Bases, ModelFile};
 use understudy::runtime::ode::{integrate, Method};
 use understudy::runtime::unit::full_converter::{FullConverter, FullConverterParams};
 use understudy::runtime::unit::{Disturbance, GridEquivalent, OperatingPoint, C64};
+use understudy::runtime::variables::vr;
 
 /// The fault both sides see: the terminal voltage falls to `retained` pu from `start_s` for
 /// `duration_s`.
@@ -53,8 +58,25 @@ type Inst = *mut c_void;
 
 unsafe extern "C" fn quiet(_: *mut c_void, _: i32, _: *const c_char, _: *const c_char) {}
 
-/// (median s per doStep, simulated s per wall s) of the model's FMU over `duration_s`.
-fn measure_fmu(model: &ModelFile, fault: Fault, duration_s: f64) -> (f64, f64) {
+/// One timed run of the FMU.
+#[derive(Clone, Copy)]
+struct Measured {
+    median_do_step_s: f64,
+    /// wall time per host step: set inputs, get outputs, doStep
+    per_host_step_s: f64,
+    /// simulated s per wall s
+    rate: f64,
+}
+
+/// The FMU of `model`, exported and unpacked once for all runs.
+struct Exported {
+    _dir: tempfile::TempDir,
+    so: std::path::PathBuf,
+    root: std::path::PathBuf,
+    guid: String,
+}
+
+fn export(model: &ModelFile) -> Exported {
     let dir = tempfile::tempdir().unwrap();
     let fmu = dir.path().join("bench.fmu");
     let report = export_fmu(model, &fmu, FmiVersion::V3).expect("export");
@@ -66,17 +88,27 @@ fn measure_fmu(model: &ModelFile, fault: Fault, duration_s: f64) -> (f64, f64) {
     let so = root
         .join("binaries/x86_64-linux")
         .join(format!("{}.so", report.model_identifier));
-    unsafe { run_fmu(&so, &root, &report.guid, model, fault, duration_s) }
+    Exported {
+        _dir: dir,
+        so,
+        root,
+        guid: report.guid,
+    }
+}
+
+fn measure_fmu(fmu: &Exported, h: f64, fault: Fault, duration_s: f64) -> Measured {
+    // SAFETY: the library is the runtime we just exported, called as FMI 3.0 prescribes
+    unsafe { run_fmu(&fmu.so, &fmu.root, &fmu.guid, h, fault, duration_s) }
 }
 
 unsafe fn run_fmu(
     so: &Path,
     root: &Path,
     token: &str,
-    model: &ModelFile,
+    h: f64,
     fault: Fault,
     duration_s: f64,
-) -> (f64, f64) {
+) -> Measured {
     let lib = libloading::Library::new(so).expect("the FMU's library loads");
     type Instantiate = unsafe extern "C" fn(
         *const c_char,
@@ -133,13 +165,17 @@ unsafe fn run_fmu(
         std::ptr::null(),
     );
     assert!(!i.is_null());
-    let refs = [0u32, 1];
+    let refs = [vr::V_RE, vr::V_IM];
     let v0 = C64::new(1.0, 0.0);
     let vf = C64::new(fault.retained, 0.0);
     assert_eq!(enter(i, false, 0.0, 0.0, false, 0.0), 0);
     assert_eq!(set(i, refs.as_ptr(), 2, [v0.re, v0.im].as_ptr(), 2), 0);
     assert_eq!(exit(i), 0);
-    let h = model.communication_step_s;
+    let get: libloading::Symbol<
+        unsafe extern "C" fn(Inst, *const u32, usize, *mut f64, usize) -> i32,
+    > = lib.get(b"fmi3GetFloat64\0").unwrap();
+    let outs = [vr::I_RE, vr::I_IM, vr::P, vr::Q];
+    let mut y = [0.0; 4];
     let n = (duration_s / h).round() as usize;
     let mut per_call = Vec::with_capacity(n);
     let wall = Instant::now();
@@ -151,6 +187,7 @@ unsafe fn run_fmu(
             v0
         };
         assert_eq!(set(i, refs.as_ptr(), 2, [v.re, v.im].as_ptr(), 2), 0);
+        assert_eq!(get(i, outs.as_ptr(), 4, y.as_mut_ptr(), 4), 0);
         let (mut a, mut b, mut c, mut last) = (false, false, false, 0.0);
         let start = Instant::now();
         let s = do_step(i, t, h, true, &mut a, &mut b, &mut c, &mut last);
@@ -158,9 +195,14 @@ unsafe fn run_fmu(
         assert_eq!(s, 0, "fmi3DoStep failed at t = {t} s");
     }
     let total = wall.elapsed().as_secs_f64();
+    std::hint::black_box(y);
     free(i);
     per_call.sort_by(f64::total_cmp);
-    (per_call[n / 2], n as f64 * h / total)
+    Measured {
+        median_do_step_s: per_call[n / 2],
+        per_host_step_s: total / n as f64,
+        rate: n as f64 * h / total,
+    }
 }
 
 /// Simulated s per wall s of the detailed model's own simulation (RK4 at 50 µs, the
@@ -196,29 +238,63 @@ fn measure_detailed(fault: Fault, duration_s: f64) -> f64 {
     duration_s / wall.elapsed().as_secs_f64()
 }
 
+/// Interleaved repeats per host step.
+const REPEATS: usize = 5;
+
+fn median(mut v: Vec<f64>) -> f64 {
+    v.sort_by(f64::total_cmp);
+    v[v.len() / 2]
+}
+
 fn main() {
     let full = std::env::args().any(|a| a == "--bench");
     let duration_s = if full { 2.0 } else { 0.3 };
+    let repeats = if full { REPEATS } else { 1 };
     let fault = Fault {
         start_s: 0.1,
         duration_s: 0.15,
         retained: 0.2,
     };
     let model = model_to_measure();
-    let (median, fmu_rate) = measure_fmu(&model, fault, duration_s);
-    let detailed_rate = measure_detailed(fault, duration_s);
+    let steps: Vec<f64> = match std::env::var("UNDERSTUDY_BENCH_STEPS") {
+        Ok(list) => list
+            .split(',')
+            .map(|s| s.trim().parse().expect("UNDERSTUDY_BENCH_STEPS: seconds"))
+            .collect(),
+        Err(_) => {
+            let mut s = vec![model.communication_step_s];
+            if (model.communication_step_s - 0.01).abs() > 1e-12 {
+                s.push(0.01);
+            }
+            s
+        }
+    };
+    let fmu = export(&model);
     println!(
-        "FMU `{}` (FMI 3.0, C ABI), step {} s, {duration_s} s simulated: median fmi3DoStep {:.2} µs, {:.1} simulated s per wall s",
-        model.name,
-        model.communication_step_s,
-        median * 1e6,
-        fmu_rate
+        "FMU `{}` (FMI 3.0, C ABI) vs the detailed full-converter model's native simulation (RK4 \
+         at 50 µs, whatever the host step), {duration_s} s with a {} s fault to {} pu, median of \
+         {repeats} interleaved runs each",
+        model.name, fault.duration_s, fault.retained
     );
-    println!(
-        "detailed full-converter model, native simulation (RK4 50 µs): {detailed_rate:.1} simulated s per wall s"
-    );
-    println!(
-        "ratio FMU / detailed native: {:.2}x",
-        fmu_rate / detailed_rate
-    );
+    for h in steps {
+        let mut runs = Vec::new();
+        let mut detailed = Vec::new();
+        for _ in 0..repeats {
+            runs.push(measure_fmu(&fmu, h, fault, duration_s));
+            detailed.push(measure_detailed(fault, duration_s));
+        }
+        let fmu_rate = median(runs.iter().map(|m| m.rate).collect());
+        let detailed_rate = median(detailed);
+        println!(
+            "host step {:>6.1} ms: FMU median fmi3DoStep {:8.2} µs, per host step (set + get + \
+             doStep) {:8.2} µs, {:9.1} simulated s per wall s | detailed {:6.1} simulated s per \
+             wall s | ratio FMU / detailed {:7.1}x",
+            h * 1e3,
+            median(runs.iter().map(|m| m.median_do_step_s).collect()) * 1e6,
+            median(runs.iter().map(|m| m.per_host_step_s).collect()) * 1e6,
+            fmu_rate,
+            detailed_rate,
+            fmu_rate / detailed_rate
+        );
+    }
 }

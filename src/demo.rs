@@ -55,9 +55,22 @@ pub fn replay_through_fmu(
         Vec::with_capacity(n),
         Vec::with_capacity(n),
     ];
+    // value references resolved once, as a host does before it runs
+    let vr = |names: &[&str]| -> Result<Vec<u32>, crate::Error> {
+        names
+            .iter()
+            .map(|n| {
+                inst.value_reference(n, crate::fmi::import::BaseType::Real)
+                    .map_err(|e| failed("value reference", &e))
+            })
+            .collect()
+    };
+    let setpoints_and_inputs = vr(&["p_ref", "q_ref", "v_re", "v_im"])?;
+    let inputs = vr(&["v_re", "v_im"])?;
+    let outputs = vr(&["i_re", "i_im", "p", "q"])?;
     let start = std::time::Instant::now();
-    inst.set_real_by_name(
-        &["p_ref", "q_ref", "v_re", "v_im"],
+    inst.set_real(
+        &setpoints_and_inputs,
         &[d.p[0], d.q[0], d.v_re[0], d.v_im[0]],
     )
     .map_err(|e| failed("set start values", &e))?;
@@ -66,10 +79,10 @@ pub fn replay_through_fmu(
     inst.exit_initialization()
         .map_err(|e| failed("exit initialization", &e))?;
     for k in 0..n {
-        inst.set_real_by_name(&["v_re", "v_im"], &[d.v_re[k], d.v_im[k]])
+        inst.set_real(&inputs, &[d.v_re[k], d.v_im[k]])
             .map_err(|e| failed("set inputs", &e))?;
         let y = inst
-            .get_real_by_name(&["i_re", "i_im", "p", "q"])
+            .get_real(&outputs)
             .map_err(|e| failed("get outputs", &e))?;
         for (o, v) in out.iter_mut().zip(y) {
             o.push(v);

@@ -250,20 +250,74 @@ pub fn expm(m: &DMatrix<f64>) -> DMatrix<f64> {
 pub struct CorrectionStepper {
     a: DMatrix<f64>,
     b: DMatrix<f64>,
-    c: DMatrix<f64>,
-    d: DMatrix<f64>,
-    /// (h, Φ, Γ) of the last step size
-    cache: Option<(f64, DMatrix<f64>, DMatrix<f64>)>,
+    /// C (2 × order) and D (2 × inputs), row-major
+    c: Vec<f64>,
+    d: Vec<f64>,
+    cache: Option<Discrete>,
+    /// scratch for the next state
+    next: Vec<f64>,
+}
+
+/// Φ(h) and Γ(h) of one step size, stored for an O(entries) step: Φ row by row without its
+/// exact zeros (a modal, block-diagonal A gives a block-diagonal Φ, so a step costs O(order)
+/// instead of O(order²)), Γ dense row-major.
+#[derive(Debug, Clone)]
+struct Discrete {
+    h: f64,
+    /// row k's entries are `phi_col[phi_row[k]..phi_row[k + 1]]`, `phi_val[..]`
+    phi_row: Vec<usize>,
+    phi_col: Vec<usize>,
+    phi_val: Vec<f64>,
+    gamma: Vec<f64>,
+}
+
+impl Discrete {
+    fn new(a: &DMatrix<f64>, b: &DMatrix<f64>, h: f64) -> Self {
+        let (phi, gamma) = zoh(a, b, h);
+        let n = phi.nrows();
+        let mut phi_row = Vec::with_capacity(n + 1);
+        let mut phi_col = Vec::new();
+        let mut phi_val = Vec::new();
+        phi_row.push(0);
+        for i in 0..n {
+            for j in 0..n {
+                let v = phi[(i, j)];
+                // an exact zero contributes exactly nothing (the states are finite)
+                if v != 0.0 {
+                    phi_col.push(j);
+                    phi_val.push(v);
+                }
+            }
+            phi_row.push(phi_col.len());
+        }
+        let gamma = (0..n)
+            .flat_map(|i| (0..N_INPUTS).map(move |j| (i, j)))
+            .map(|(i, j)| gamma[(i, j)])
+            .collect();
+        Self {
+            h,
+            phi_row,
+            phi_col,
+            phi_val,
+            gamma,
+        }
+    }
 }
 
 impl CorrectionStepper {
     pub fn new(correction: &Correction) -> Result<Self, CorrectionError> {
         let (a, b, c, d) = correction.matrices()?;
+        let row_major = |m: &DMatrix<f64>| {
+            (0..m.nrows())
+                .flat_map(|i| m.row(i).iter().copied().collect::<Vec<_>>())
+                .collect()
+        };
         Ok(Self {
+            next: vec![0.0; a.nrows()],
+            c: row_major(&c),
+            d: row_major(&d),
             a,
             b,
-            c,
-            d,
             cache: None,
         })
     }
@@ -272,7 +326,14 @@ impl CorrectionStepper {
         self.a.nrows()
     }
 
-    /// z ← Φ(h) z + Γ(h) u: exact for an input held over the step.
+    /// Entries of Φ stepped per step at the cached step size (order² for a dense A, about
+    /// 2·order for a modal one); `None` before the first step.
+    pub fn phi_entries(&self) -> Option<usize> {
+        self.cache.as_ref().map(|d| d.phi_val.len())
+    }
+
+    /// z ← Φ(h) z + Γ(h) u: exact for an input held over the step. Allocates nothing once the
+    /// step size is cached.
     pub fn step(&mut self, z: &mut [f64], u: &[f64; N_INPUTS], h_s: f64) {
         let n = self.order();
         assert_eq!(z.len(), n, "correction state length");
@@ -283,25 +344,41 @@ impl CorrectionStepper {
         // recomputing the matrix exponential for each would cost far more than the step itself.
         // Steps within a relative 1e-9 of the cached one reuse it (the resulting change in Φ is
         // of the order 1e-9·‖A‖·h, far below the correction's own accuracy).
-        let fresh = !matches!(&self.cache, Some((h, _, _)) if (h - h_s).abs() <= 1e-9 * h.abs());
+        let fresh = !matches!(&self.cache, Some(d) if (d.h - h_s).abs() <= 1e-9 * d.h.abs());
         if fresh {
-            let (phi, gamma) = zoh(&self.a, &self.b, h_s);
-            self.cache = Some((h_s, phi, gamma));
+            self.cache = Some(Discrete::new(&self.a, &self.b, h_s));
         }
-        let (_, phi, gamma) = self.cache.as_ref().expect("filled above");
-        let zv = nalgebra::DVector::from_column_slice(z);
-        let uv = nalgebra::DVector::from_column_slice(u);
-        let next = phi * zv + gamma * uv;
-        z.copy_from_slice(next.as_slice());
+        let d = self.cache.as_ref().expect("filled above");
+        for (i, next) in self.next.iter_mut().enumerate() {
+            let g = &d.gamma[i * N_INPUTS..(i + 1) * N_INPUTS];
+            let mut acc: f64 = g.iter().zip(u).map(|(g, u)| g * u).sum();
+            let (from, to) = (d.phi_row[i], d.phi_row[i + 1]);
+            for (col, v) in d.phi_col[from..to].iter().zip(&d.phi_val[from..to]) {
+                acc += v * z[*col];
+            }
+            *next = acc;
+        }
+        z.copy_from_slice(&self.next);
     }
 
     /// Δy = C z + D u: (Δi_d, Δi_q) in the pre-fault frame.
     pub fn output(&self, z: &[f64], u: &[f64; N_INPUTS]) -> (f64, f64) {
-        let mut y = &self.d * nalgebra::DVector::from_column_slice(u);
-        if self.order() > 0 {
-            y += &self.c * nalgebra::DVector::from_column_slice(z);
-        }
-        (y[0], y[1])
+        let n = self.order();
+        assert_eq!(z.len(), n, "correction state length");
+        let row = |k: usize| {
+            let du: f64 = self.d[k * N_INPUTS..(k + 1) * N_INPUTS]
+                .iter()
+                .zip(u)
+                .map(|(d, u)| d * u)
+                .sum();
+            let cz: f64 = self.c[k * n..(k + 1) * n]
+                .iter()
+                .zip(z)
+                .map(|(c, z)| c * z)
+                .sum();
+            du + cz
+        };
+        (row(0), row(1))
     }
 }
 

@@ -5,10 +5,11 @@
 //! The block model runs at its own internal step (`internal_step_s`, the step it was fitted at)
 //! with the host's input held; the correction is stepped exactly over the host's step.
 
-use crate::block::{BlockModel, InitialOutputs, Sample, Simulator, SimulatorSnapshot, Template};
+use crate::block::{BlockModel, BlockRun, InitialOutputs, Sample, SimulatorSnapshot, Template};
 use crate::correction::{Correction, CorrectionStepper, PreFault};
 use crate::cosim::{CoSimError, CoSimModel, Inputs, Outputs, Setpoints};
 use serde::{Deserialize, Serialize};
+use std::cell::RefCell;
 
 /// The operating points seen in training (pu); reported, and part of the training envelope.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
@@ -27,7 +28,21 @@ pub struct HybridCoSim {
     free: Vec<f64>,
     internal_step_s: f64,
     correction: CorrectionStepper,
-    running: Option<HybridRunning>,
+    running: Option<Live>,
+    /// signals of the output probe, reused so that `outputs` allocates nothing
+    probe: RefCell<Vec<f64>>,
+}
+
+/// The running hybrid, held ready to step (no snapshot round trip per step).
+#[derive(Debug, Clone)]
+struct Live {
+    block: BlockRun<f64>,
+    block_steps: u64,
+    elapsed_s: f64,
+    z: Vec<f64>,
+    /// the correction's state of a step in progress (kept only when finite)
+    z_trial: Vec<f64>,
+    pre_fault: PreFault,
 }
 
 /// Everything of a [`HybridCoSim`] that evolves (nothing before initialisation).
@@ -66,6 +81,7 @@ impl HybridCoSim {
             CorrectionStepper::new(correction).map_err(|e| CoSimError::ModelFile(e.to_string()))?;
         Ok(Self {
             free: model.free_parameter_values(),
+            probe: RefCell::new(Vec::with_capacity(model.signal_names().len())),
             model,
             internal_step_s,
             correction,
@@ -75,12 +91,6 @@ impl HybridCoSim {
 
     pub fn correction_order(&self) -> usize {
         self.correction.order()
-    }
-
-    fn simulator(&self, snapshot: &SimulatorSnapshot) -> Result<Simulator<'_, f64>, CoSimError> {
-        Simulator::resume(&self.model, &self.free, snapshot, self.internal_step_s, 1).ok_or_else(
-            || CoSimError::BadState("block-model state does not fit the hybrid's template".into()),
-        )
     }
 }
 
@@ -99,7 +109,7 @@ impl CoSimModel for HybridCoSim {
         inputs.validate()?;
         let v = inputs.voltage();
         let initial = InitialOutputs::from_power(v.re, v.im, setpoints.p_ref, setpoints.q_ref);
-        let sim = Simulator::new(
+        let block = BlockRun::new(
             &self.model,
             &self.free,
             sample(inputs),
@@ -107,11 +117,13 @@ impl CoSimModel for HybridCoSim {
             self.internal_step_s,
             1,
         );
-        self.running = Some(HybridRunning {
-            block: sim.snapshot(),
+        let n = self.correction.order();
+        self.running = Some(Live {
+            block,
             block_steps: 0,
             elapsed_s: 0.0,
-            z: vec![0.0; self.correction.order()],
+            z: vec![0.0; n],
+            z_trial: vec![0.0; n],
             pre_fault: PreFault {
                 u0: v.norm(),
                 theta0: v.arg(),
@@ -132,33 +144,34 @@ impl CoSimModel for HybridCoSim {
                 expected: "a communication step > 0 s".into(),
             });
         }
-        let mut running = self
+        let running = self
             .running
-            .clone()
+            .as_mut()
             .ok_or(CoSimError::NotInitialised { call: "do_step" })?;
-        let target = running.elapsed_s + h_s;
-        let mut sim = self.simulator(&running.block)?;
-        // the block model steps at its internal step while a whole step fits before the
-        // target (a relative slack absorbs rounding of sums of host steps)
-        let h = self.internal_step_s;
-        while (running.block_steps + 1) as f64 * h <= target + 1e-9 * h {
-            sim.step(sample(inputs));
-            running.block_steps += 1;
-        }
-        running.block = sim.snapshot();
+        // the correction first, on a copy: a failed step changes nothing
         let u = running
             .pre_fault
             .input(inputs.v_re, inputs.v_im, inputs.f_grid);
-        self.correction.step(&mut running.z, &u, h_s);
-        running.elapsed_s = target;
-        if running.z.iter().any(|z| !z.is_finite()) {
+        running.z_trial.copy_from_slice(&running.z);
+        self.correction.step(&mut running.z_trial, &u, h_s);
+        if running.z_trial.iter().any(|z| !z.is_finite()) {
             return Err(CoSimError::BadValue {
                 field: "correction state".into(),
                 value: f64::NAN,
                 expected: "finite values after the step".into(),
             });
         }
-        self.running = Some(running);
+        std::mem::swap(&mut running.z, &mut running.z_trial);
+        let target = running.elapsed_s + h_s;
+        // the block model steps at its internal step while a whole step fits before the
+        // target (a relative slack absorbs rounding of sums of host steps)
+        let h = self.internal_step_s;
+        let s = sample(inputs);
+        while (running.block_steps + 1) as f64 * h <= target + 1e-9 * h {
+            running.block.step(&self.model, s);
+            running.block_steps += 1;
+        }
+        running.elapsed_s = target;
         Ok(())
     }
 
@@ -167,8 +180,10 @@ impl CoSimModel for HybridCoSim {
             .running
             .as_ref()
             .ok_or(CoSimError::NotInitialised { call: "outputs" })?;
-        let sim = self.simulator(&running.block)?;
-        let [i_re, i_im, p, q] = sim.peek(sample(inputs));
+        let [i_re, i_im, p, q] =
+            running
+                .block
+                .peek(&self.model, sample(inputs), &mut self.probe.borrow_mut());
         let u = running
             .pre_fault
             .input(inputs.v_re, inputs.v_im, inputs.f_grid);
@@ -186,22 +201,40 @@ impl CoSimModel for HybridCoSim {
 
     fn save_state(&self) -> HybridState {
         HybridState {
-            running: self.running.clone(),
+            running: self.running.as_ref().map(|r| HybridRunning {
+                block: r.block.snapshot(),
+                block_steps: r.block_steps,
+                elapsed_s: r.elapsed_s,
+                z: r.z.clone(),
+                pre_fault: r.pre_fault,
+            }),
         }
     }
 
     fn restore_state(&mut self, state: &HybridState) -> Result<(), CoSimError> {
-        if let Some(r) = &state.running {
-            self.simulator(&r.block)?;
-            if r.z.len() != self.correction.order() || r.z.iter().any(|z| !z.is_finite()) {
-                return Err(CoSimError::BadState(format!(
-                    "expected {} finite correction states, found {}",
-                    self.correction.order(),
-                    r.z.len()
-                )));
-            }
+        let Some(r) = &state.running else {
+            self.running = None;
+            return Ok(());
+        };
+        let block = BlockRun::resume(&self.model, &self.free, &r.block, self.internal_step_s, 1)
+            .ok_or_else(|| {
+                CoSimError::BadState("block-model state does not fit the hybrid's template".into())
+            })?;
+        if r.z.len() != self.correction.order() || r.z.iter().any(|z| !z.is_finite()) {
+            return Err(CoSimError::BadState(format!(
+                "expected {} finite correction states, found {}",
+                self.correction.order(),
+                r.z.len()
+            )));
         }
-        self.running = state.running.clone();
+        self.running = Some(Live {
+            block,
+            block_steps: r.block_steps,
+            elapsed_s: r.elapsed_s,
+            z: r.z.clone(),
+            z_trial: r.z.clone(),
+            pre_fault: r.pre_fault,
+        });
         Ok(())
     }
 }

@@ -117,8 +117,9 @@ pub fn run(req: Request) -> Result<i32, Error> {
     let (p_red, p_hyb) = outcome.median_nrmse("p");
     let (q_red, q_hyb) = outcome.median_nrmse("q");
     println!(
-        "hybrid: correction order {} ({} delays, rank {}), {} eigenvalue(s) moved for stability, {} off the negative real axis",
+        "hybrid: correction order {} (fitted per input at order {}; {} delays, rank {}), {} eigenvalue(s) moved for stability, {} off the negative real axis",
         outcome.order,
+        outcome.fitted_order,
         outcome.delays,
         outcome.rank,
         outcome.stability.moved.len(),

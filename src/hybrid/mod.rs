@@ -443,7 +443,10 @@ pub struct HybridOutcome {
     pub validation: Vec<CaseValidation>,
     pub held_out_cases: Vec<Case>,
     pub compression: CompressionSummary,
+    /// Order of the correction in the model file (the minimal modal realisation).
     pub order: usize,
+    /// Order of the per-input realisation its output map was fitted on (N_INPUTS × modes).
+    pub fitted_order: usize,
     pub rank: usize,
     pub delays: usize,
     pub discrete_eigenvalues: Vec<Complex64>,
@@ -720,7 +723,10 @@ pub fn fit_hybrid(
     // moved to its modulus (same decay, no sign flip every sample) and reported
     let (discrete, moved_to_real_axis) = fit.model.without_negative_real(1e-3)?;
     let poles = continuous_poles(&discrete.eigenvalues()?, step_s);
-    let correction = free_run_correction(&poles, &training, &residuals, config.ridge)?;
+    let per_input = free_run_correction(&poles, &training, &residuals, config.ridge)?;
+    let fitted_order = per_input.order();
+    // the same transfer function with one state per output and pole: what the FMU steps
+    let correction = minimal_modal(&poles, &per_input);
     let order = correction.order();
     let model = model_file("hybrid", &template, step_s, correction, bases, &training);
     model.validate().map_err(|source| HybridError::Runtime {
@@ -760,6 +766,7 @@ pub fn fit_hybrid(
         held_out_cases: held_out,
         compression,
         order,
+        fitted_order,
         rank: fit.rank,
         delays: config.delays,
         discrete_eigenvalues: discrete.eigenvalues()?,
@@ -902,4 +909,137 @@ fn free_run_correction(
         c: rows_of(&c),
         d: rows_of(&d),
     })
+}
+
+/// The correction of [`free_run_correction`] (per input j, one modal block per pole, output map
+/// C fitted) realised with one state per output and pole: the same transfer function
+/// C (sI − A)⁻¹ B + D and, from z = 0, the same output for every input (exact, not a
+/// truncation), of order 2·(modes) instead of N_INPUTS·(modes).
+///
+/// Why it is exact: per pole, y gets Σ_j c_j x_j with x_j driven by u_j alone through the same
+/// pole; ξ = Σ_j c_j x_j obeys the pole's own dynamics driven by Σ_j c_j u_j (residue form of a
+/// partial-fraction expansion, e.g. Kailath, Linear Systems, 1980, §6.1). For a real pole s:
+/// dξ/dt = s ξ + R u, y = ξ, R = [c_1 … c_6] (2 × 6). For a pair σ ± jω with the per-input
+/// block [[σ, ω], [−ω, σ]] driven through (1, 0): ζ_j = x_j1 − j·x_j2 obeys
+/// dζ_j/dt = (σ + jω) ζ_j + u_j and c_j·x_j = Re(w_j ζ_j) with w_j = c_j1 + j·c_j2, so per
+/// output k the complex state ξ_k = Σ_j w_kj ζ_j = a_k + j·b_k gives
+/// da_k/dt = σ a_k − ω b_k + Re(w_k)·u, db_k/dt = ω a_k + σ b_k + Im(w_k)·u, y_k = a_k.
+/// The result is block diagonal with 1×1 and 2×2 blocks, which the runtime steps in O(order).
+pub fn minimal_modal(poles: &[Complex64], per_input: &Correction) -> Correction {
+    let (_, _, c_full, d) = per_input
+        .matrices()
+        .expect("free_run_correction builds consistent matrices");
+    let outputs = CORRECTION_OUTPUTS.len();
+    let block: usize = poles.iter().map(|p| if p.im == 0.0 { 1 } else { 2 }).sum();
+    assert_eq!(
+        c_full.ncols(),
+        block * N_INPUTS,
+        "per-input realisation order"
+    );
+    let n = block * outputs;
+    let mut a = DMatrix::zeros(n, n);
+    let mut b = DMatrix::zeros(n, N_INPUTS);
+    let mut c = DMatrix::zeros(outputs, n);
+    // `at`: first state of this pole in each input's block; `to`: first new state of it
+    let (mut at, mut to) = (0, 0);
+    for p in poles {
+        if p.im == 0.0 {
+            for k in 0..outputs {
+                a[(to + k, to + k)] = p.re;
+                c[(k, to + k)] = 1.0;
+                for j in 0..N_INPUTS {
+                    b[(to + k, j)] = c_full[(k, j * block + at)];
+                }
+            }
+            at += 1;
+            to += outputs;
+        } else {
+            for k in 0..outputs {
+                let (re, im) = (to + 2 * k, to + 2 * k + 1);
+                a[(re, re)] = p.re;
+                a[(im, im)] = p.re;
+                a[(re, im)] = -p.im;
+                a[(im, re)] = p.im;
+                c[(k, re)] = 1.0;
+                for j in 0..N_INPUTS {
+                    b[(re, j)] = c_full[(k, j * block + at)];
+                    b[(im, j)] = c_full[(k, j * block + at + 1)];
+                }
+            }
+            at += 2;
+            to += 2 * outputs;
+        }
+    }
+    Correction {
+        a: rows_of(&a),
+        b: rows_of(&b),
+        c: rows_of(&c),
+        d: rows_of(&d),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn minimal_modal_realisation_gives_the_same_output_as_the_per_input_one() {
+        // two real poles and two pairs, a per-input realisation (order 6 × 6 = 36) with an
+        // arbitrary output map, driven by the same piecewise-constant inputs from z = 0 through
+        // the runtime's stepper: the outputs agree to rounding (1e-12 of their scale), the
+        // order falls to 2 × 6 = 12
+        let poles = [
+            Complex64::new(-5.0, 0.0),
+            Complex64::new(-40.0, 0.0),
+            Complex64::new(-3.0, 25.0),
+            Complex64::new(-12.0, 140.0),
+        ];
+        let block = 6;
+        let n = block * N_INPUTS;
+        let mut a = DMatrix::zeros(n, n);
+        let mut b = DMatrix::zeros(n, N_INPUTS);
+        for j in 0..N_INPUTS {
+            let mut at = j * block;
+            for p in &poles {
+                a[(at, at)] = p.re;
+                b[(at, j)] = 1.0;
+                if p.im != 0.0 {
+                    a[(at + 1, at + 1)] = p.re;
+                    a[(at, at + 1)] = p.im;
+                    a[(at + 1, at)] = -p.im;
+                    at += 2;
+                } else {
+                    at += 1;
+                }
+            }
+        }
+        let c = DMatrix::from_fn(2, n, |i, j| ((3 * i + 7 * j) as f64 * 0.37).sin());
+        let d = DMatrix::from_fn(2, N_INPUTS, |i, j| 0.1 * (i + j) as f64);
+        let full = Correction {
+            a: rows_of(&a),
+            b: rows_of(&b),
+            c: rows_of(&c),
+            d: rows_of(&d),
+        };
+        let small = minimal_modal(&poles, &full);
+        assert_eq!(small.order(), 12);
+        let mut s_full = CorrectionStepper::new(&full).unwrap();
+        let mut s_small = CorrectionStepper::new(&small).unwrap();
+        let (mut z_full, mut z_small) = (vec![0.0; n], vec![0.0; 12]);
+        let (mut worst, mut scale) = (0.0f64, 0.0f64);
+        for k in 0..400 {
+            let u: [f64; N_INPUTS] =
+                std::array::from_fn(|j| ((k / 37 + j) as f64 * 1.3).sin() * (j + 1) as f64);
+            let (yf, ys) = (s_full.output(&z_full, &u), s_small.output(&z_small, &u));
+            worst = worst.max((yf.0 - ys.0).abs()).max((yf.1 - ys.1).abs());
+            scale = scale.max(yf.0.abs()).max(yf.1.abs());
+            s_full.step(&mut z_full, &u, 1e-3);
+            s_small.step(&mut z_small, &u, 1e-3);
+        }
+        assert!(scale > 0.1, "the test excites the outputs: {scale}");
+        assert!(worst <= 1e-12 * scale, "{worst:e} of {scale}");
+        // block diagonal with 1×1 and 2×2 blocks: the stepper keeps 2 + 2 + 4·2 + 4·2 = 20
+        // entries of Φ per output pair, not 12² = 144
+        assert_eq!(s_small.phi_entries(), Some(2 * (1 + 1 + 4 + 4)));
+    }
 }

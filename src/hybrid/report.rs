@@ -26,13 +26,15 @@ pub fn write_report_with(
     r.heading("Summary").paragraph(&format!(
         "Trained on {} traces, validated on {} held-out traces (never used in fitting). \
          Correction: poles from DMD with control on {} delays (rank {}), realised per input \
-         with its output map fitted for free run; order {} (continuous time). \
+         with its output map fitted for free run (order {}), then realised exactly with one \
+         state per output and pole: order {} (continuous time, modal, block diagonal). \
          Mean NRMSE over held-out cases and signals: reduced {:.3} %, hybrid {:.3} % of rating. \
          Verdict: {}.",
         outcome.training.len(),
         outcome.validation.len(),
         outcome.delays,
         outcome.rank,
+        outcome.fitted_order,
         outcome.order,
         mean_reduced,
         mean_hybrid,

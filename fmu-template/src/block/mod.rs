@@ -20,8 +20,8 @@ mod template;
 pub use kinds::{known_kinds, lookup, KindInfo, PortUse, KINDS};
 pub use limits::{apply_limit, Limit, LimitError, Reduction};
 pub use model::{
-    BlockModel, EvalConfig, InitialOutputs, InitialQuantity, InputSeries, OutputSeries, Sample,
-    Simulator, SimulatorSnapshot, TemplateError, INPUT_SIGNALS,
+    BlockModel, BlockRun, EvalConfig, InitialOutputs, InitialQuantity, InputSeries, OutputSeries,
+    Sample, Simulator, SimulatorSnapshot, TemplateError, INPUT_SIGNALS,
 };
 pub use scalar::{Dual, Scalar};
 pub use template::{BlockSpec, LimitKind, OutputMap, ParamRef, ParameterSpec, Template};

@@ -259,8 +259,13 @@ pub struct BlockModel {
     template: Template,
     signal_names: Vec<String>,
     blocks: Vec<Compiled>,
-    /// feedthrough blocks in evaluation order
-    run_order: Vec<usize>,
+    /// feedthrough blocks in evaluation order without the blocks whose output is fixed for a run (constants, setpoints and
+    /// gains, sums and products of only those): what each step evaluates
+    run_varying: Vec<usize>,
+    /// blocks whose output is a state, in declaration order
+    state_outputs: Vec<usize>,
+    /// blocks with a state update, in declaration order
+    stateful: Vec<usize>,
     /// all blocks in initialisation order
     init_order: Vec<usize>,
     state_len: usize,
@@ -784,6 +789,44 @@ impl BlockModel {
                 blocks: names(cycle),
             })?;
 
+        // signals fixed for a run: a setpoint or constant, and gains, sums and products of
+        // only such signals (evaluated once, at initialisation)
+        let mut fixed_signal = vec![false; signal_names.len()];
+        let mut run_varying = Vec::with_capacity(run_order.len());
+        for &bi in &run_order {
+            let b: &Compiled = &blocks[bi];
+            let fixed = match &b.op {
+                Op::Constant(_) | Op::Setpoint(_) => true,
+                Op::Gain { u, .. } => fixed_signal[*u],
+                Op::Sum(terms) => terms.iter().all(|(s, _)| fixed_signal[*s]),
+                Op::Product(factors) => factors.iter().all(|(s, _)| fixed_signal[*s]),
+                _ => false,
+            };
+            if fixed {
+                fixed_signal[b.out] = true;
+            } else {
+                run_varying.push(bi);
+            }
+        }
+        let state_outputs = (0..blocks.len())
+            .filter(|&bi| blocks[bi].state_output)
+            .collect();
+        let stateful = (0..blocks.len())
+            .filter(|&bi| {
+                matches!(
+                    blocks[bi].op,
+                    Op::Lag { .. }
+                        | Op::Washout { .. }
+                        | Op::LeadLag { .. }
+                        | Op::Integrator { .. }
+                        | Op::Pi { .. }
+                        | Op::Pll { .. }
+                        | Op::Detector { .. }
+                        | Op::RateLimiter { .. }
+                        | Op::Delay { .. }
+                )
+            })
+            .collect();
         let values = template.parameters.iter().map(|p| p.value).collect();
         let free = template
             .parameters
@@ -796,7 +839,9 @@ impl BlockModel {
             template: template.clone(),
             signal_names,
             blocks,
-            run_order,
+            run_varying,
+            state_outputs,
+            stateful,
             init_order,
             state_len,
             values,
@@ -986,7 +1031,19 @@ pub struct OutputSeries<S> {
 #[derive(Debug, Clone)]
 pub struct Simulator<'m, S: Scalar> {
     model: &'m BlockModel,
+    run: BlockRun<S>,
+}
+
+/// Everything of a running block model except the model itself: parameters, per-step
+/// coefficients, signals and states. An FMU instance owns one next to its [`BlockModel`] and
+/// steps it without allocating ([`BlockRun::step`]); [`Simulator`] pairs one with a borrowed
+/// model for the tool's side.
+#[derive(Debug, Clone)]
+pub struct BlockRun<S: Scalar> {
     params: Vec<S>,
+    /// per block: the lag coefficient a = 1 − e^{−h/T} of lags, washouts and lead-lags (0
+    /// elsewhere), fixed for a run because h and the parameters are
+    lag: Vec<S>,
     signals: Vec<S>,
     state: Vec<S>,
     next_state: Vec<S>,
@@ -1024,6 +1081,12 @@ fn clamp<S: Scalar>(x: S, lo: S, hi: S) -> S {
     }
 }
 
+fn set_inputs<S: Scalar>(signals: &mut [S], s: Sample) {
+    signals[0] = S::cst(s.v_re);
+    signals[1] = S::cst(s.v_im);
+    signals[2] = S::cst(s.f_grid);
+}
+
 impl<'m, S: Scalar> Simulator<'m, S> {
     /// Initialise to the steady state of the first sample: setpoints from `initial`, lags at
     /// their inputs, PI/integrator outputs at their `init` signals, the PLL on the voltage angle.
@@ -1039,35 +1102,77 @@ impl<'m, S: Scalar> Simulator<'m, S> {
         step_s: f64,
         substeps: usize,
     ) -> Self {
+        Self {
+            model,
+            run: BlockRun::new(model, free, first, initial, step_s, substeps),
+        }
+    }
+
+    /// Outputs (i_re, i_im, p, q) at this sample, then advance to the next sample (the input
+    /// is held over the `substeps` internal steps).
+    pub fn step(&mut self, input: Sample) -> [S; 4] {
+        self.run.step(self.model, input)
+    }
+
+    /// The outputs (i_re, i_im, p, q) the next `step` would report for `input`, without
+    /// advancing (what a co-simulation host reads between steps).
+    pub fn peek(&self, input: Sample) -> [S; 4] {
+        let mut scratch = Vec::new();
+        self.run.peek(self.model, input, &mut scratch)
+    }
+
+    /// The value of a signal after the last `step` (for inspection and tests).
+    pub fn signal(&self, name: &str) -> Option<S> {
+        self.model
+            .signal_names
+            .iter()
+            .position(|n| n == name)
+            .map(|k| self.run.signals[k])
+    }
+
+    /// The run without the model.
+    pub fn into_run(self) -> BlockRun<S> {
+        self.run
+    }
+}
+
+impl<S: Scalar> BlockRun<S> {
+    /// As [`Simulator::new`], for a model the caller keeps.
+    ///
+    /// # Panics
+    /// As [`Simulator::new`].
+    pub fn new(
+        model: &BlockModel,
+        free: &[S],
+        first: Sample,
+        initial: &InitialOutputs,
+        step_s: f64,
+        substeps: usize,
+    ) -> Self {
         assert!(step_s > 0.0 && step_s.is_finite(), "step must be > 0");
         assert!(substeps > 0, "substeps must be ≥ 1");
-        let mut sim = Self {
-            model,
-            params: model.all_params(free),
+        let params = model.all_params(free);
+        let h = step_s / substeps as f64;
+        let mut run = Self {
+            lag: lag_coefficients(model, &params, h),
+            params,
             signals: vec![S::cst(0.0); model.signal_names.len()],
             state: vec![S::cst(0.0); model.state_len],
             next_state: vec![S::cst(0.0); model.state_len],
             initial: *initial,
             first,
-            h: step_s / substeps as f64,
+            h,
             substeps,
         };
-        sim.set_inputs(first);
-        sim.initialise();
-        sim
+        set_inputs(&mut run.signals, first);
+        run.initialise(model);
+        run
     }
 
-    fn set_inputs(&mut self, s: Sample) {
-        self.signals[0] = S::cst(s.v_re);
-        self.signals[1] = S::cst(s.v_im);
-        self.signals[2] = S::cst(s.f_grid);
-    }
-
-    fn initialise(&mut self) {
-        let model = self.model;
+    fn initialise(&mut self, model: &BlockModel) {
+        let mut sig = std::mem::take(&mut self.signals);
         for &bi in &model.init_order {
             let b = &model.blocks[bi];
-            let sig = &mut self.signals;
             match &b.op {
                 Op::Lag { u, .. }
                 | Op::LeadLag { u, .. }
@@ -1085,14 +1190,13 @@ impl<'m, S: Scalar> Simulator<'m, S> {
                 Op::Detector { .. } => {
                     // starts inactive, then decides on the first sample
                     self.state[b.state] = S::cst(0.0);
-                    self.algebraic(bi);
+                    self.algebraic(model, &mut sig, bi);
                 }
-                _ => self.algebraic(bi),
+                _ => self.algebraic(model, &mut sig, bi),
             }
         }
         // states from the initial signals
         for b in &model.blocks {
-            let sig = &self.signals;
             let st = &mut self.state;
             match &b.op {
                 Op::Lag { u, .. } | Op::LeadLag { u, .. } | Op::Washout { u, .. } => {
@@ -1111,12 +1215,12 @@ impl<'m, S: Scalar> Simulator<'m, S> {
                 _ => {}
             }
         }
+        self.signals = sig;
     }
 
-    /// Output of a feedthrough block from the signals and states of this step.
-    fn algebraic(&mut self, bi: usize) {
-        let b = &self.model.blocks[bi];
-        let sig = &self.signals;
+    /// Output of a feedthrough block from the signals `sig` and the states of this step.
+    fn algebraic(&self, model: &BlockModel, sig: &mut [S], bi: usize) {
+        let b = &model.blocks[bi];
         let out = b.out;
         let y: S = match &b.op {
             Op::Constant(v) => num(&self.params, *v),
@@ -1225,7 +1329,7 @@ impl<'m, S: Scalar> Simulator<'m, S> {
                 // (re + j·im)·e^{−jθ}
                 let d = sig[*re] * c + sig[*im] * s;
                 let q = sig[*im] * c - sig[*re] * s;
-                self.signals[out + 1] = q;
+                sig[out + 1] = q;
                 d
             }
             Op::FromDq { d, q, angle } => {
@@ -1233,7 +1337,7 @@ impl<'m, S: Scalar> Simulator<'m, S> {
                 // (d + j·q)·e^{jθ}
                 let re = sig[*d] * c - sig[*q] * s;
                 let im = sig[*d] * s + sig[*q] * c;
-                self.signals[out + 1] = im;
+                sig[out + 1] = im;
                 re
             }
             Op::Magnitude { re, im } => (sig[*re] * sig[*re] + sig[*im] * sig[*im]).sqrt(),
@@ -1246,7 +1350,7 @@ impl<'m, S: Scalar> Simulator<'m, S> {
                 // S = v·conj(i)
                 let (vr, vi, ir, ii) = (sig[*v_re], sig[*v_im], sig[*i_re], sig[*i_im]);
                 let q = vi * ir - vr * ii;
-                self.signals[out + 1] = q;
+                sig[out + 1] = q;
                 vr * ir + vi * ii
             }
             Op::CurrentLimit {
@@ -1282,8 +1386,8 @@ impl<'m, S: Scalar> Simulator<'m, S> {
                 // exact comparison: the clamp returns the bound itself when it acts
                 #[allow(clippy::float_cmp)]
                 let p_limited = pl.value() != sig[*p].value();
-                self.signals[out + 1] = ql;
-                self.signals[out + 2] = S::cst(if p_limited { 1.0 } else { 0.0 });
+                sig[out + 1] = ql;
+                sig[out + 2] = S::cst(if p_limited { 1.0 } else { 0.0 });
                 pl
             }
             Op::Lag { .. }
@@ -1292,54 +1396,51 @@ impl<'m, S: Scalar> Simulator<'m, S> {
             | Op::Delay { .. }
             | Op::Hold { .. } => unreachable!("state-output block evaluated as algebraic"),
         };
-        self.signals[out] = y;
+        sig[out] = y;
     }
 
-    /// Phases A and B: every signal at the current state and input.
-    fn evaluate(&mut self) {
-        let model = self.model;
-        for b in &model.blocks {
-            if !b.state_output {
-                continue;
-            }
+    /// Phases A and B: every signal at the current state and the inputs already in `sig`.
+    /// Blocks whose output is fixed for the run (constants, setpoints and what only they feed)
+    /// keep the value set at initialisation.
+    fn evaluate(&self, model: &BlockModel, sig: &mut [S]) {
+        for &bi in &model.state_outputs {
+            let b = &model.blocks[bi];
             match &b.op {
                 Op::Lag { .. } | Op::Integrator { .. } | Op::Delay { .. } | Op::Hold { .. } => {
-                    self.signals[b.out] = self.state[b.state]
+                    sig[b.out] = self.state[b.state]
                 }
                 Op::Pll { .. } => {
-                    self.signals[b.out] = self.state[b.state];
-                    self.signals[b.out + 1] = S::cst(1.0) + self.state[b.state + 1];
+                    sig[b.out] = self.state[b.state];
+                    sig[b.out + 1] = S::cst(1.0) + self.state[b.state + 1];
                 }
                 _ => unreachable!("only state-output blocks here"),
             }
         }
-        for &bi in &model.run_order {
-            self.algebraic(bi);
+        for &bi in &model.run_varying {
+            self.algebraic(model, sig, bi);
         }
     }
 
     /// Phase C: advance every state by h from the signals of this step.
-    fn update(&mut self) {
-        let model = self.model;
+    fn update(&mut self, model: &BlockModel) {
         let h = self.h;
         self.next_state.copy_from_slice(&self.state);
         let params = &self.params;
-        for b in &model.blocks {
-            let sig = &self.signals;
-            let x = self.state[b.state..].first().copied();
-            let frozen = |f: &Option<usize>| f.is_some_and(|f| sig[f].value() > 0.5);
-            let ns = &mut self.next_state;
+        let sig = &self.signals;
+        let frozen = |f: &Option<usize>| f.is_some_and(|f| sig[f].value() > 0.5);
+        let ns = &mut self.next_state;
+        for &bi in &model.stateful {
+            let b = &model.blocks[bi];
+            let x = self.state[b.state];
             match &b.op {
-                Op::Lag { u, t } | Op::Washout { u, t } | Op::LeadLag { u, t_lag: t, .. } => {
-                    let x = x.expect("state");
-                    let a = lag_coefficient(h, num(params, *t));
-                    ns[b.state] = x + a * (sig[*u] - x);
+                Op::Lag { u, .. } | Op::Washout { u, .. } | Op::LeadLag { u, .. } => {
+                    ns[b.state] = x + self.lag[bi] * (sig[*u] - x);
                 }
                 Op::Integrator { u, k, freeze, .. } if !frozen(freeze) => {
-                    ns[b.state] = x.expect("state") + num(params, *k) * sig[*u] * S::cst(h);
+                    ns[b.state] = x + num(params, *k) * sig[*u] * S::cst(h);
                 }
                 Op::Pi { u, ki, freeze, .. } if !frozen(freeze) => {
-                    ns[b.state] = x.expect("state") + num(params, *ki) * sig[*u] * S::cst(h);
+                    ns[b.state] = x + num(params, *ki) * sig[*u] * S::cst(h);
                 }
                 Op::Pll {
                     re,
@@ -1348,7 +1449,7 @@ impl<'m, S: Scalar> Simulator<'m, S> {
                     kp,
                     ki,
                 } => {
-                    let theta = self.state[b.state];
+                    let theta = x;
                     let integral = self.state[b.state + 1];
                     // q-axis voltage in the PLL frame
                     let vq = if frozen(freeze) {
@@ -1369,48 +1470,49 @@ impl<'m, S: Scalar> Simulator<'m, S> {
     }
 
     /// Outputs (i_re, i_im, p, q) at this sample, then advance to the next sample (the input
-    /// is held over the `substeps` internal steps).
-    pub fn step(&mut self, input: Sample) -> [S; 4] {
-        self.set_inputs(input);
-        self.evaluate();
-        let o = self.model.outputs;
-        let y = [
-            self.signals[o[0]],
-            self.signals[o[1]],
-            self.signals[o[2]],
-            self.signals[o[3]],
-        ];
-        self.update();
+    /// is held over the `substeps` internal steps). Allocates nothing.
+    pub fn step(&mut self, model: &BlockModel, input: Sample) -> [S; 4] {
+        let mut sig = std::mem::take(&mut self.signals);
+        set_inputs(&mut sig, input);
+        self.evaluate(model, &mut sig);
+        let o = model.outputs;
+        let y = [sig[o[0]], sig[o[1]], sig[o[2]], sig[o[3]]];
+        self.signals = sig;
+        self.update(model);
         for _ in 1..self.substeps {
-            self.evaluate();
-            self.update();
+            let mut sig = std::mem::take(&mut self.signals);
+            self.evaluate(model, &mut sig);
+            self.signals = sig;
+            self.update(model);
         }
         y
     }
 
     /// The outputs (i_re, i_im, p, q) the next `step` would report for `input`, without
-    /// advancing (what a co-simulation host reads between steps).
-    pub fn peek(&self, input: Sample) -> [S; 4] {
-        let mut probe = self.clone();
-        probe.set_inputs(input);
-        probe.evaluate();
-        let o = self.model.outputs;
-        [
-            probe.signals[o[0]],
-            probe.signals[o[1]],
-            probe.signals[o[2]],
-            probe.signals[o[3]],
-        ]
+    /// advancing; `scratch` holds the signals of the probe (reused between calls, so a caller
+    /// that keeps it allocates nothing).
+    pub fn peek(&self, model: &BlockModel, input: Sample, scratch: &mut Vec<S>) -> [S; 4] {
+        scratch.clear();
+        scratch.extend_from_slice(&self.signals);
+        set_inputs(scratch, input);
+        self.evaluate(model, scratch);
+        let o = model.outputs;
+        [scratch[o[0]], scratch[o[1]], scratch[o[2]], scratch[o[3]]]
     }
+}
 
-    /// The value of a signal after the last `step` (for inspection and tests).
-    pub fn signal(&self, name: &str) -> Option<S> {
-        self.model
-            .signal_names
-            .iter()
-            .position(|n| n == name)
-            .map(|k| self.signals[k])
-    }
+/// The lag coefficient of every lag, washout and lead-lag block (0 for other blocks).
+fn lag_coefficients<S: Scalar>(model: &BlockModel, params: &[S], h: f64) -> Vec<S> {
+    model
+        .blocks
+        .iter()
+        .map(|b| match &b.op {
+            Op::Lag { t, .. } | Op::Washout { t, .. } | Op::LeadLag { t_lag: t, .. } => {
+                lag_coefficient(h, num(params, *t))
+            }
+            _ => S::cst(0.0),
+        })
+        .collect()
 }
 
 /// Everything of a running `f64` [`Simulator`] that evolves or was fixed at initialisation:
@@ -1427,17 +1529,7 @@ pub struct SimulatorSnapshot {
 impl<'m> Simulator<'m, f64> {
     /// A copy of what evolves.
     pub fn snapshot(&self) -> SimulatorSnapshot {
-        SimulatorSnapshot {
-            signals: self.signals.clone(),
-            state: self.state.clone(),
-            first: [self.first.v_re, self.first.v_im, self.first.f_grid],
-            initial: [
-                self.initial.p,
-                self.initial.q,
-                self.initial.i_re,
-                self.initial.i_im,
-            ],
-        }
+        self.run.snapshot()
     }
 
     /// Continue a run from `snapshot`; `None` when its sizes do not fit `model`.
@@ -1451,24 +1543,64 @@ impl<'m> Simulator<'m, f64> {
         step_s: f64,
         substeps: usize,
     ) -> Option<Self> {
+        Some(Self {
+            model,
+            run: BlockRun::resume(model, free, snapshot, step_s, substeps)?,
+        })
+    }
+}
+
+impl BlockRun<f64> {
+    /// A copy of what evolves.
+    pub fn snapshot(&self) -> SimulatorSnapshot {
+        SimulatorSnapshot {
+            signals: self.signals.clone(),
+            state: self.state.clone(),
+            first: [self.first.v_re, self.first.v_im, self.first.f_grid],
+            initial: [
+                self.initial.p,
+                self.initial.q,
+                self.initial.i_re,
+                self.initial.i_im,
+            ],
+        }
+    }
+
+    /// Whether `snapshot`'s sizes fit `model`.
+    pub fn fits(model: &BlockModel, snapshot: &SimulatorSnapshot) -> bool {
+        snapshot.signals.len() == model.signal_names.len()
+            && snapshot.state.len() == model.state_len
+    }
+
+    /// Continue a run from `snapshot`; `None` when its sizes do not fit `model`.
+    ///
+    /// # Panics
+    /// As [`Simulator::new`] for a wrong free-parameter count, step or substeps.
+    pub fn resume(
+        model: &BlockModel,
+        free: &[f64],
+        snapshot: &SimulatorSnapshot,
+        step_s: f64,
+        substeps: usize,
+    ) -> Option<Self> {
         assert!(step_s > 0.0 && step_s.is_finite(), "step must be > 0");
         assert!(substeps > 0, "substeps must be ≥ 1");
-        if snapshot.signals.len() != model.signal_names.len()
-            || snapshot.state.len() != model.state_len
-        {
+        if !Self::fits(model, snapshot) {
             return None;
         }
         let [v_re, v_im, f_grid] = snapshot.first;
         let [p, q, i_re, i_im] = snapshot.initial;
+        let params = model.all_params(free);
+        let h = step_s / substeps as f64;
         Some(Self {
-            model,
-            params: model.all_params(free),
+            lag: lag_coefficients(model, &params, h),
+            params,
             signals: snapshot.signals.clone(),
             state: snapshot.state.clone(),
             next_state: vec![0.0; model.state_len],
             initial: InitialOutputs { p, q, i_re, i_im },
             first: Sample { v_re, v_im, f_grid },
-            h: step_s / substeps as f64,
+            h,
             substeps,
         })
     }
