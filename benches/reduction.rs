@@ -25,7 +25,15 @@ fn env_or<T: std::str::FromStr>(name: &str, default: T) -> T {
         .unwrap_or(default)
 }
 
+/// The machine's load averages (1, 5, 15 min) from /proc/loadavg, for reading the times.
+fn load() -> String {
+    std::fs::read_to_string("/proc/loadavg")
+        .map(|s| s.split_whitespace().take(3).collect::<Vec<_>>().join(" "))
+        .unwrap_or_else(|_| "unknown".into())
+}
+
 fn main() {
+    println!("load average at start: {}", load());
     let cases_n: usize = env_or("UNDERSTUDY_BENCH_CASES", 24);
     let duration_s: f64 = env_or("UNDERSTUDY_BENCH_DURATION_S", 1.5);
     let study = understudy::demo::demo_study();
@@ -153,4 +161,5 @@ fn main() {
         100.0 * outcome.reduced_errors.held_out.q,
         outcome.stop.describe()
     );
+    println!("load average at the end: {}", load());
 }

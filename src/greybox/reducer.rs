@@ -4,7 +4,7 @@
 use super::fit::{FitTrace, SignalWeights, TemplateFit};
 use crate::fit::ModelError;
 use crate::reduce::{BoundaryLimit, BoundaryReading, LimitDirection, ReducedModel, Reducer};
-use understudy_runtime::block::{apply_limit, EvalConfig, Limit, Reduction, Template};
+use understudy_runtime::block::{apply_limit, EvalConfig, Limit, LimitKind, Reduction, Template};
 
 /// Reduces a template the way a boundary reading says.
 #[derive(Debug, Clone)]
@@ -21,21 +21,78 @@ impl TemplateReducer {
     pub fn limit_of(&self, reading: &BoundaryReading) -> Result<(String, Limit), ModelError> {
         let names = &reading.parameter_names;
         match &reading.limit {
-            BoundaryLimit::Single { index, direction } => Ok((
-                names[*index].clone(),
-                match direction {
+            BoundaryLimit::Single { index, direction } => {
+                let name = &names[*index];
+                let limit = match direction {
                     LimitDirection::ToZero => Limit::ToZero,
+                    // a PI's proportional gain → ∞ alone (ki/kp → 0) is the same high-gain limit
+                    // as both gains at a fixed ratio: the loop tracks its reference exactly
+                    LimitDirection::ToInfinity
+                        if !self.declares(name, LimitKind::ToInfinity)
+                            && self.declares(name, LimitKind::IdealTracking)
+                            && self.pi_gains(name).is_some_and(|(kp, _)| kp == *name) =>
+                    {
+                        Limit::IdealTracking
+                    }
                     LimitDirection::ToInfinity => Limit::ToInfinity,
-                },
-            )),
+                };
+                Ok((name.clone(), limit))
+            }
             BoundaryLimit::Fold { first, second } => Ok((
                 names[*first].clone(),
                 Limit::MergeWith(names[*second].clone()),
             )),
-            BoundaryLimit::Coupled { .. } => Err(ModelError::Unsupported {
-                what: format!("the coupled limit `{}`", reading.sentence),
-            }),
+            BoundaryLimit::Coupled { components } => {
+                // several parameters → ∞ together with finite ratios: ideal tracking when they
+                // are both gains of one PI that declares it
+                let rising: Vec<&str> = components
+                    .iter()
+                    .filter(|c| c.1 > 0.0)
+                    .map(|c| names[c.0].as_str())
+                    .collect();
+                let tracking = rising.iter().find_map(|name| {
+                    let (kp, ki) = self.pi_gains(name)?;
+                    (rising.contains(&kp.as_str())
+                        && rising.contains(&ki.as_str())
+                        && self.declares(&kp, LimitKind::IdealTracking))
+                    .then_some(kp)
+                });
+                match tracking {
+                    Some(kp) => Ok((kp, Limit::IdealTracking)),
+                    None => Err(ModelError::Unsupported {
+                        what: format!(
+                            "the coupled limit `{}` (no declared limit moves these parameters \
+                             together)",
+                            reading.sentence
+                        ),
+                    }),
+                }
+            }
         }
+    }
+
+    fn declares(&self, parameter: &str, kind: LimitKind) -> bool {
+        self.template
+            .parameter(parameter)
+            .is_some_and(|p| p.limits.contains(&kind))
+    }
+
+    /// The (kp, ki) parameter names of the PI block that uses `parameter` as a gain.
+    fn pi_gains(&self, parameter: &str) -> Option<(String, String)> {
+        self.template.blocks.iter().find_map(|b| {
+            if b.kind != "pi" {
+                return None;
+            }
+            let gain = |setting: &str| {
+                b.params
+                    .get(setting)
+                    .and_then(|r| r.parameter())
+                    .filter(|(_, negate)| !negate)
+                    .map(|(n, _)| n.to_string())
+            };
+            let (kp, ki) = (gain("kp")?, gain("ki")?);
+            (kp == parameter || ki == parameter).then_some((kp, ki))
+        })
     }
 
     /// Apply the reading's limit: the reduction record and the reduced fit problem.

@@ -75,6 +75,8 @@ pub struct MbamRecord {
 #[derive(Debug)]
 pub struct MbamBoundary {
     pub fisher: FisherInformation,
+    /// which eigen-direction the geodesics followed: 0 the least sensitive, 1 the next, ...
+    pub direction_rank: usize,
     pub geodesics: [GeodesicResult; 2],
     pub chosen: usize,
     pub reading: BoundaryReading,
@@ -90,24 +92,59 @@ pub fn mbam_boundary<M: LeastSquaresModel + ?Sized>(
     reducer: &dyn Reducer,
     config: &MbamConfig,
 ) -> Result<MbamBoundary, ReduceError> {
-    let names = model.parameter_names();
     let fisher = FisherInformation::at(model, fitted_log_params)?;
-    let (lambda_min, direction) = fisher.least_sensitive();
-    if !(lambda_min.is_finite() && fisher.eigenvalues.iter().all(|e| e.is_finite())) {
-        return Err(ReduceError::DegenerateFisher {
-            log_params: fitted_log_params.to_vec(),
-            eigenvalues: fisher.eigenvalues.as_slice().to_vec(),
-        });
-    }
-    let integrator = Geodesic::new(config.geodesic.clone());
-    let plus: Vec<f64> = direction.iter().copied().collect();
-    let minus: Vec<f64> = direction.iter().map(|x| -x).collect();
-    let (forward, backward) = rayon::join(
-        || integrator.run(model, fitted_log_params, &plus, |_| {}),
-        || integrator.run(model, fitted_log_params, &minus, |_| {}),
-    );
-    let geodesics = [forward?, backward?];
+    check_fisher(&fisher)?;
+    let geodesics = mbam_geodesics(model, &fisher, 0, config)?;
+    mbam_boundary_from(model, fisher, 0, geodesics, reducer, config)
+}
 
+/// A Fisher information whose eigen-directions can be followed (all eigenvalues finite).
+pub fn check_fisher(fisher: &FisherInformation) -> Result<(), ReduceError> {
+    if fisher.eigenvalues.iter().all(|e| e.is_finite()) {
+        Ok(())
+    } else {
+        Err(ReduceError::DegenerateFisher {
+            log_params: fisher.log_params.clone(),
+            eigenvalues: fisher.eigenvalues.clone(),
+        })
+    }
+}
+
+/// Geodesics from `fisher.log_params` along +e and −e (in parallel), e the `rank`-th
+/// least-sensitive eigenvector of the Fisher information (0: the sloppiest direction; the next
+/// ones are tried when the sloppiest leads to a limit the model cannot take).
+///
+/// # Panics
+/// When `rank` is not below the number of parameters.
+pub fn mbam_geodesics<M: LeastSquaresModel + ?Sized>(
+    model: &M,
+    fisher: &FisherInformation,
+    rank: usize,
+    config: &MbamConfig,
+) -> Result<[GeodesicResult; 2], ReduceError> {
+    assert!(rank < fisher.eigenvectors.len(), "direction rank {rank}");
+    let integrator = Geodesic::new(config.geodesic.clone());
+    let plus: Vec<f64> = fisher.eigenvectors[rank].clone();
+    let minus: Vec<f64> = plus.iter().map(|x| -x).collect();
+    let start = &fisher.log_params;
+    let (forward, backward) = rayon::join(
+        || integrator.run(model, start, &plus, |_| {}),
+        || integrator.run(model, start, &minus, |_| {}),
+    );
+    Ok([forward?, backward?])
+}
+
+/// Step 3 of [`mbam_step`] on given geodesics: among those that reached a boundary, nearest
+/// first, read the limit and ask `reducer` for the reduced model.
+pub fn mbam_boundary_from<M: LeastSquaresModel + ?Sized>(
+    model: &M,
+    fisher: FisherInformation,
+    direction_rank: usize,
+    geodesics: [GeodesicResult; 2],
+    reducer: &dyn Reducer,
+    config: &MbamConfig,
+) -> Result<MbamBoundary, ReduceError> {
+    let names = model.parameter_names();
     let mut candidates: Vec<usize> = (0..2)
         .filter(|&k| geodesics[k].stop.is_boundary())
         .collect();
@@ -126,6 +163,7 @@ pub fn mbam_boundary<M: LeastSquaresModel + ?Sized>(
             Ok(reduced) => {
                 return Ok(MbamBoundary {
                     fisher,
+                    direction_rank,
                     geodesics,
                     chosen,
                     reading,

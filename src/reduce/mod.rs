@@ -23,7 +23,8 @@ pub use geodesic::{
     GeodesicStop, SpeedNormalisation,
 };
 pub use mbam::{
-    mbam_boundary, mbam_step, MbamBoundary, MbamConfig, MbamRecord, ReducedModel, Reducer,
+    check_fisher, mbam_boundary, mbam_boundary_from, mbam_geodesics, mbam_step, MbamBoundary,
+    MbamConfig, MbamRecord, ReducedModel, Reducer,
 };
 pub use reduction::{
     read_reduced, reduce_template, split_traces, write_reduced, ReducedFile, ReductionConfig,

@@ -9,9 +9,12 @@
 //! stay model-agnostic. Errors are NRMSE of the pooled traces (RMS of model − data divided by
 //! the data's range, per signal); all signals per unit on the unit rating.
 
-use super::mbam::{mbam_boundary, MbamConfig, ReducedModel, Reducer};
+use super::mbam::{
+    check_fisher, mbam_boundary_from, mbam_geodesics, MbamConfig, ReducedModel, Reducer,
+};
 use super::{
-    BoundaryLimit, BoundaryReading, GeodesicConfig, LimitDirection, ReduceError, SpeedNormalisation,
+    BoundaryLimit, BoundaryReading, FisherInformation, GeodesicConfig, LimitDirection, ReduceError,
+    SpeedNormalisation,
 };
 use crate::fit::{ConfigError, LeastSquaresModel, LevenbergMarquardt, LmConfig, ModelError};
 use crate::greybox::{FitTrace, SignalWeights, TemplateFit, TemplateReducer};
@@ -163,9 +166,11 @@ impl ReductionConfig {
         Ok(self)
     }
 
-    /// How many boundary limits one step may try (≥ 1): when a reduction breaks the tolerance,
-    /// the geodesics are rerun and the next limit (the other direction, or the next part of a
-    /// coupled limit) is tried, up to this many in all.
+    /// How many eigen-directions of the Fisher information one step may follow (≥ 1), the
+    /// sloppiest first. Along each, every limit read at either end of its geodesics (a coupled
+    /// limit whole, then each part) is applied, refitted and judged in turn; when none is
+    /// declared by the template or none stays within the tolerance, the geodesics along the
+    /// next-sloppiest direction are run.
     pub fn with_attempts_per_step(mut self, n: usize) -> Result<Self, ConfigError> {
         if n == 0 {
             return Err(invalid("attempts_per_step", n, "at least 1"));
@@ -297,7 +302,13 @@ pub struct ReductionStep {
     pub sentence: String,
     /// the limit read off the geodesic's end point
     pub boundary: String,
-    /// limits read but refused (sentence, reason) before the one taken
+    /// which eigen-direction of the Fisher information the geodesic followed: 0 the least
+    /// sensitive, 1 the next, ... (a later one when the earlier ones led to limits the template
+    /// does not declare or that broke the tolerance)
+    #[serde(default)]
+    pub direction_rank: usize,
+    /// every limit tried before the one taken, in physical words (what, why not kept): limits
+    /// the template does not declare, refused rewrites, refits beyond the tolerance
     pub refused: Vec<(String, String)>,
     /// whether the held-out check kept this reduction
     pub accepted: bool,
@@ -476,61 +487,107 @@ fn errors_of(
     })
 }
 
-/// The template reducer, also remembering the reduction it made; a coupled limit is taken as
-/// its largest declared single-parameter part (the refit and the held-out check judge it).
+/// The template reducer, also remembering the reduction it made and every limit it refused
+/// (in physical words, for the log). A coupled limit is tried whole first (a PI's gains going to
+/// ∞ together is ideal tracking), then as each of its single-parameter parts (the refit and the
+/// held-out check judge it).
 struct Capturing {
     inner: TemplateReducer,
     /// limits already tried at this step (parameter and limit), refused on a retry
     skip: Vec<String>,
     taken: Mutex<Option<(String, Reduction, TemplateFit)>>,
+    refusals: Mutex<Vec<(String, String)>>,
+}
+
+/// "1st", "2nd", "3rd", "4th", ...
+fn ordinal(k: usize) -> String {
+    let suffix = match (k % 10, k % 100) {
+        (_, 11..=13) => "th",
+        (1, _) => "st",
+        (2, _) => "nd",
+        (3, _) => "rd",
+        _ => "th",
+    };
+    format!("{k}{suffix}")
 }
 
 impl Capturing {
-    fn singles(reading: &BoundaryReading) -> Vec<BoundaryReading> {
-        match &reading.limit {
-            BoundaryLimit::Coupled { components } => components
-                .iter()
-                .map(|&(index, component)| {
-                    let direction = if component < 0.0 {
-                        LimitDirection::ToZero
-                    } else {
-                        LimitDirection::ToInfinity
-                    };
-                    BoundaryReading {
-                        limit: BoundaryLimit::Single { index, direction },
-                        sentence: format!(
-                            "{} (taken as its part {} → {})",
-                            reading.sentence,
-                            reading.parameter_names[index],
-                            if component < 0.0 { "0" } else { "∞" }
-                        ),
-                        ..reading.clone()
-                    }
-                })
-                .collect(),
-            _ => vec![reading.clone()],
+    fn candidates(reading: &BoundaryReading) -> Vec<BoundaryReading> {
+        let mut all = vec![reading.clone()];
+        if let BoundaryLimit::Coupled { components } = &reading.limit {
+            all.extend(components.iter().map(|&(index, component)| {
+                let direction = if component < 0.0 {
+                    LimitDirection::ToZero
+                } else {
+                    LimitDirection::ToInfinity
+                };
+                BoundaryReading {
+                    limit: BoundaryLimit::Single { index, direction },
+                    sentence: format!(
+                        "{} (taken as its part {} → {})",
+                        reading.sentence,
+                        reading.parameter_names[index],
+                        if component < 0.0 { "0" } else { "∞" }
+                    ),
+                    ..reading.clone()
+                }
+            }));
         }
+        all
+    }
+
+    /// The reading's sentence with the physical meaning of the parameters it moves.
+    fn in_words(&self, reading: &BoundaryReading) -> String {
+        let indices: Vec<usize> = match &reading.limit {
+            BoundaryLimit::Single { index, .. } => vec![*index],
+            BoundaryLimit::Fold { first, second } => vec![*first, *second],
+            BoundaryLimit::Coupled { components } => components.iter().map(|c| c.0).collect(),
+        };
+        let meanings: Vec<String> = indices
+            .iter()
+            .filter_map(|&i| {
+                let name = &reading.parameter_names[i];
+                self.inner
+                    .template
+                    .parameter(name)
+                    .map(|p| format!("{name}: {}", p.meaning))
+            })
+            .collect();
+        format!("{} [{}]", reading.sentence, meanings.join("; "))
     }
 }
 
 impl Reducer for Capturing {
     fn reduce(&self, reading: &BoundaryReading) -> Result<ReducedModel, ModelError> {
         let mut first_error = None;
-        for single in Self::singles(reading) {
-            let key = match self.inner.limit_of(&single) {
+        let refuse = |candidate: &BoundaryReading, e: &ModelError| {
+            self.refusals
+                .lock()
+                .expect("not poisoned")
+                .push((self.in_words(candidate), e.to_string()));
+        };
+        let candidates = Self::candidates(reading);
+        let whole_and_parts = candidates.len() > 1;
+        for (k, candidate) in candidates.iter().enumerate() {
+            let key = match self.inner.limit_of(candidate) {
                 Ok((parameter, limit)) => format!("{parameter} {limit:?}"),
                 Err(e) => {
+                    // a coupled limit that is no declared limit as a whole is tried by its parts
+                    // without a log line of its own
+                    if !(whole_and_parts && k == 0) {
+                        refuse(candidate, &e);
+                    }
                     first_error.get_or_insert(e);
                     continue;
                 }
             };
             if self.skip.contains(&key) {
                 first_error.get_or_insert(ModelError::Unsupported {
-                    what: format!("`{}`: tried already at this step", single.sentence),
+                    what: format!("`{}`: tried already at this step", candidate.sentence),
                 });
                 continue;
             }
-            match self.inner.reduce_template(&single) {
+            match self.inner.reduce_template(candidate) {
                 Ok((reduction, fit, start)) => {
                     let description = reduction.sentence.clone();
                     *self.taken.lock().expect("not poisoned") = Some((key, reduction, fit.clone()));
@@ -541,6 +598,7 @@ impl Reducer for Capturing {
                     });
                 }
                 Err(e) => {
+                    refuse(candidate, &e);
                     first_error.get_or_insert(e);
                 }
             }
@@ -636,143 +694,193 @@ pub fn reduce_template(
                 steps: config.max_steps,
             };
         }
+        // the Fisher information and the geodesics see a spread subset of the training traces
+        // (same parameters, same order); the reducer and the refit below see them all
+        let geodesic_problem = if geo_dec.len() < train_dec.len() {
+            Some(problem(&current.template_at(&current_lp), &geo_dec)?)
+        } else {
+            None
+        };
+        let geo_model = geodesic_problem.as_ref().unwrap_or(&current);
+        let fisher = match FisherInformation::at(geo_model, &current_lp)
+            .and_then(|f| check_fisher(&f).map(|()| f))
+        {
+            Ok(f) => f,
+            Err(e) => {
+                break StopReason::Failed {
+                    reason: e.to_string(),
+                }
+            }
+        };
+        let n = current_lp.len();
+        // limits already tried at this step (parameter and limit), refused when read again
         let mut skip: Vec<String> = Vec::new();
-        let mut rejected: Vec<(String, String)> = Vec::new();
+        // every limit tried and not kept at this step, in physical words (what, why)
+        let mut attempts: Vec<(String, String)> = Vec::new();
         let mut outcome = None;
         let mut last_rejected = None;
         let mut halt = None;
-        while skip.len() < config.attempts_per_step {
-            let reducer = Capturing {
-                inner: TemplateReducer {
-                    template: current.template_at(&current_lp),
-                    traces: train_dec.clone(),
-                    weights: SignalWeights::default(),
-                    eval: EvalConfig::default(),
-                },
-                skip: skip.clone(),
-                taken: Mutex::new(None),
-            };
-            // the geodesics see a spread subset of the training traces (same parameters, same
-            // order); the reducer and the refit below see them all
-            let geodesic_problem = if geo_dec.len() < train_dec.len() {
-                Some(problem(&current.template_at(&current_lp), &geo_dec)?)
-            } else {
-                None
-            };
-            let boundary = match mbam_boundary(
-                geodesic_problem.as_ref().unwrap_or(&current),
-                &current_lp,
-                &reducer,
-                &config.mbam,
-            ) {
-                Ok(b) => b,
-                Err(ReduceError::NoBoundary { arc_lengths, stops }) => {
-                    halt = Some(StopReason::NoBoundary {
-                        reason: format!("geodesic stops {stops:?} at arc lengths {arc_lengths:?}"),
-                    });
-                    break;
-                }
-                Err(e @ ReduceError::Reduction { .. }) => {
-                    halt = Some(StopReason::Refused {
-                        reason: e.to_string(),
-                    });
-                    break;
-                }
-                Err(e) => {
-                    halt = Some(StopReason::Failed {
-                        reason: e.to_string(),
-                    });
-                    break;
-                }
-            };
-            let (key, reduction, reduced_problem) = reducer
-                .taken
-                .into_inner()
-                .expect("not poisoned")
-                .expect("the accepted reduction was recorded");
-            skip.push(key);
-            let refit = budget_fit(
-                &reduced_problem,
-                &boundary.reduced.start_log_params,
-                &config.lm,
-                config.refit_iterations,
+        let mut no_boundary = Vec::new();
+        'directions: for rank in 0..config.attempts_per_step.min(n) {
+            let label = format!(
+                "{} sloppiest direction (Fisher eigenvalue {:.3e})",
+                ordinal(rank + 1),
+                fisher.eigenvalues[rank]
             );
-            let (reduced_lp, refit_cost, refit_iterations) = match refit {
-                Ok(r) => r,
-                Err(reason) => {
-                    rejected.push((
-                        reduction.sentence.clone(),
-                        format!("refit failed: {reason}"),
-                    ));
+            let geodesics = match mbam_geodesics(geo_model, &fisher, rank, &config.mbam) {
+                Ok(g) => g,
+                Err(e) => {
+                    attempts.push((label, format!("the geodesics failed: {e}")));
                     continue;
                 }
             };
-            let reduced_template = reduced_problem.template_at(&reduced_lp);
-            let errors_after = errors_of(&reduced_template, &train_dec, &held_dec)?;
-            let accepted = config.within_tolerance(&full_errors_dec, &errors_after);
-            let chosen = &boundary.geodesics[boundary.chosen];
-            // points where the integration produced non-finite numbers are left out of the
-            // record (JSON has no infinities)
-            let finite: Vec<&super::GeodesicPoint> = chosen
-                .path
-                .iter()
-                .filter(|p| p.arc_length.is_finite() && p.log_params.iter().all(|x| x.is_finite()))
-                .collect();
-            let mut refused = boundary.refused.clone();
-            refused.retain(|(_, reason)| !reason.contains("tried already at this step"));
-            refused.extend(rejected.iter().cloned());
-            let step = ReductionStep {
-                index: steps.len() + 1,
-                sentence: reduction.sentence.clone(),
-                boundary: boundary.reading.sentence.clone(),
-                refused,
-                accepted,
-                parameters_before: current_lp.len(),
-                parameters_after: reduced_lp.len(),
-                states_before: reduction.states_before,
-                states_after: reduction.states_after,
-                errors_before: current_errors,
-                errors_after,
-                parameter_names: current.parameter_names(),
-                log_params_before: current_lp.clone(),
-                fisher_eigenvalues: boundary
-                    .fisher
-                    .eigenvalues
+            // the limits along this direction, nearest first, until one is kept or all are
+            // tried (a tried limit is skipped when read again)
+            loop {
+                let reducer = Capturing {
+                    inner: TemplateReducer {
+                        template: current.template_at(&current_lp),
+                        traces: train_dec.clone(),
+                        weights: SignalWeights::default(),
+                        eval: EvalConfig::default(),
+                    },
+                    skip: skip.clone(),
+                    taken: Mutex::new(None),
+                    refusals: Mutex::new(Vec::new()),
+                };
+                let result = mbam_boundary_from(
+                    geo_model,
+                    fisher.clone(),
+                    rank,
+                    geodesics.clone(),
+                    &reducer,
+                    &config.mbam,
+                );
+                for (what, why) in reducer.refusals.lock().expect("not poisoned").drain(..) {
+                    attempts.push((format!("{label}: {what}"), why));
+                }
+                let boundary = match result {
+                    Ok(b) => b,
+                    Err(ReduceError::NoBoundary { arc_lengths, stops }) => {
+                        let why = format!(
+                            "no manifold boundary: geodesic stops {stops:?} at arc lengths \
+                             {arc_lengths:?}"
+                        );
+                        no_boundary.push(format!("{label}: {why}"));
+                        attempts.push((label, why));
+                        continue 'directions;
+                    }
+                    // every limit read along this direction was refused (logged above)
+                    Err(ReduceError::Reduction { .. }) => continue 'directions,
+                    Err(e) => {
+                        halt = Some(StopReason::Failed {
+                            reason: e.to_string(),
+                        });
+                        break 'directions;
+                    }
+                };
+                let (key, reduction, reduced_problem) = reducer
+                    .taken
+                    .into_inner()
+                    .expect("not poisoned")
+                    .expect("the accepted reduction was recorded");
+                skip.push(key);
+                let refit = budget_fit(
+                    &reduced_problem,
+                    &boundary.reduced.start_log_params,
+                    &config.lm,
+                    config.refit_iterations,
+                );
+                let (reduced_lp, refit_cost, refit_iterations) = match refit {
+                    Ok(r) => r,
+                    Err(reason) => {
+                        attempts.push((
+                            format!("{label}: {}", reduction.sentence),
+                            format!("refit failed: {reason}"),
+                        ));
+                        continue;
+                    }
+                };
+                let reduced_template = reduced_problem.template_at(&reduced_lp);
+                let errors_after = errors_of(&reduced_template, &train_dec, &held_dec)?;
+                let accepted = config.within_tolerance(&full_errors_dec, &errors_after);
+                let chosen = &boundary.geodesics[boundary.chosen];
+                // points where the integration produced non-finite numbers are left out of the
+                // record (JSON has no infinities)
+                let finite: Vec<&super::GeodesicPoint> = chosen
+                    .path
                     .iter()
-                    .map(|e| if e.is_finite() { *e } else { 0.0 })
-                    .collect(),
-                geodesic_arc_length: finite.iter().map(|p| p.arc_length).collect(),
-                geodesic_log_params: finite.iter().map(|p| p.log_params.clone()).collect(),
-                geodesic_stop: format!("{:?}", chosen.stop),
-                refit_iterations,
-                refit_cost,
-            };
-            if accepted {
-                outcome = Some((step, reduced_problem, reduced_lp, errors_after));
-                break;
+                    .filter(|p| {
+                        p.arc_length.is_finite() && p.log_params.iter().all(|x| x.is_finite())
+                    })
+                    .collect();
+                let step = ReductionStep {
+                    index: steps.len() + 1,
+                    sentence: reduction.sentence.clone(),
+                    boundary: boundary.reading.sentence.clone(),
+                    direction_rank: rank,
+                    refused: attempts.clone(),
+                    accepted,
+                    parameters_before: current_lp.len(),
+                    parameters_after: reduced_lp.len(),
+                    states_before: reduction.states_before,
+                    states_after: reduction.states_after,
+                    errors_before: current_errors,
+                    errors_after,
+                    parameter_names: current.parameter_names(),
+                    log_params_before: current_lp.clone(),
+                    fisher_eigenvalues: boundary
+                        .fisher
+                        .eigenvalues
+                        .iter()
+                        .map(|e| if e.is_finite() { *e } else { 0.0 })
+                        .collect(),
+                    geodesic_arc_length: finite.iter().map(|p| p.arc_length).collect(),
+                    geodesic_log_params: finite.iter().map(|p| p.log_params.clone()).collect(),
+                    geodesic_stop: format!("{:?}", chosen.stop),
+                    refit_iterations,
+                    refit_cost,
+                };
+                if accepted {
+                    outcome = Some((step, reduced_problem, reduced_lp, errors_after));
+                    break 'directions;
+                }
+                attempts.push((
+                    format!("{label}: {}", step.sentence),
+                    format!(
+                        "beyond the tolerance: NRMSE P/Q training {:.2}/{:.2} %, held out \
+                         {:.2}/{:.2} %",
+                        100.0 * errors_after.training.p,
+                        100.0 * errors_after.training.q,
+                        100.0 * errors_after.held_out.p,
+                        100.0 * errors_after.held_out.q
+                    ),
+                ));
+                last_rejected = Some(step);
             }
-            rejected.push((
-                step.sentence.clone(),
-                format!(
-                    "beyond the tolerance: NRMSE P/Q training {:.2}/{:.2} %, held out \
-                     {:.2}/{:.2} %",
-                    100.0 * errors_after.training.p,
-                    100.0 * errors_after.training.q,
-                    100.0 * errors_after.held_out.p,
-                    100.0 * errors_after.held_out.q
-                ),
-            ));
-            last_rejected = Some(step);
         }
         let Some((step, reduced_problem, reduced_lp, errors_after)) = outcome else {
-            if let Some(step) = last_rejected {
+            if let Some(mut step) = last_rejected {
+                step.refused = attempts;
                 observer(ReductionEvent::Step(&step));
                 steps.push(step);
                 break StopReason::Tolerance { step: steps.len() };
             }
-            break halt.unwrap_or(StopReason::Failed {
-                reason: format!("every refit failed: {rejected:?}"),
-            });
+            if let Some(halt) = halt {
+                break halt;
+            }
+            if no_boundary.len() == attempts.len() {
+                break StopReason::NoBoundary {
+                    reason: no_boundary.join("; "),
+                };
+            }
+            break StopReason::Refused {
+                reason: attempts
+                    .iter()
+                    .map(|(what, why)| format!("{what}: {why}"))
+                    .collect::<Vec<_>>()
+                    .join("; "),
+            };
         };
         observer(ReductionEvent::Step(&step));
         steps.push(step);
@@ -916,7 +1024,8 @@ impl ReducedFile {
         for step in &self.steps {
             let _ = writeln!(
                 s,
-                "step {}: {}{}\n  boundary: {}\n  parameters {} → {}, states {} → {}\n  \
+                "step {}: {}{}\n  boundary: {} (geodesic along the {} sloppiest direction)\n  \
+                 parameters {} → {}, states {} → {}\n  \
                  NRMSE P/Q training {:.2}/{:.2} % → {:.2}/{:.2} %, held out {:.2}/{:.2} % → \
                  {:.2}/{:.2} % (decimated traces)\n  smallest Fisher eigenvalue {:.3e}, \
                  largest {:.3e}; geodesic stop: {}",
@@ -928,6 +1037,7 @@ impl ReducedFile {
                     "  [NOT KEPT: held-out error beyond the tolerance]"
                 },
                 step.boundary,
+                ordinal(step.direction_rank + 1),
                 step.parameters_before,
                 step.parameters_after,
                 step.states_before,

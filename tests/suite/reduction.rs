@@ -55,7 +55,11 @@ fn reduction_of_the_generic_template_keeps_at_most_half_within_the_held_out_tole
     assert_eq!((training.len(), held_out.len()), (6, 2));
     let template = generic_converter();
     let free_full = template.parameters.iter().filter(|p| !p.fixed).count();
-    let config = ReductionConfig::default().with_iterations(30, 15).unwrap();
+    // the floor at half the parameters keeps the test short (the loop would go on)
+    let config = ReductionConfig::default()
+        .with_iterations(30, 15)
+        .and_then(|c| c.with_min_parameters(free_full / 2))
+        .unwrap();
     let mut events = 0;
     let outcome = reduce_template(&template, &training, &held_out, &config, |e| {
         events += 1;
@@ -79,6 +83,18 @@ fn reduction_of_the_generic_template_keeps_at_most_half_within_the_held_out_tole
     assert!(
         2 * free_reduced <= free_full,
         "{free_reduced} of {free_full} parameters remain"
+    );
+    // a limit the template does not declare did not end the loop: a later limit was kept in the
+    // same step, and the refused one is logged with its parameter's physical meaning (on this
+    // set: p_ki → ∞ at step 4; the steps past the sloppiest direction come after the floor)
+    assert!(
+        file.steps.iter().any(|s| s.accepted
+            && s.refused
+                .iter()
+                .any(|(what, why)| what.contains("sloppiest direction")
+                    && what.contains(": ")
+                    && (why.contains("does not declare") || why.contains("has no such limit")))),
+        "no step went on past an undeclared limit"
     );
     // the held-out tolerance, checked on the (decimated) traces the loop judged by, for every
     // kept step, and the reported errors of the final model on the full-rate traces

@@ -128,13 +128,16 @@ pub fn apply_limit(
     let mut changed = Vec::new();
     match limit {
         Limit::IdealTracking => {
-            return Err(LimitError::NotImplemented {
-                parameter: parameter.into(),
-                limit: limit.symbol(),
-                reason: "replacing a PI by the algebraic constraint it enforces needs the \
-                         inverse of the loop it closes"
-                    .into(),
-            })
+            let (rewritten, effect) = super::tracking::ideal_tracking(template, parameter)
+                .map_err(|r| LimitError::Unsupported {
+                    parameter: parameter.into(),
+                    limit: limit.symbol(),
+                    block: r.block,
+                    setting: r.setting,
+                    reason: r.reason,
+                })?;
+            reduced = rewritten;
+            effects.push(effect);
         }
         Limit::MergeWith(other) => {
             let other_spec = template
@@ -426,7 +429,7 @@ pub fn apply_limit(
 }
 
 /// Every reference to signal `from` (inputs, terms, outputs) now reads `to`.
-fn rename_signal(t: &mut Template, from: &str, to: &str) {
+pub(super) fn rename_signal(t: &mut Template, from: &str, to: &str) {
     for b in &mut t.blocks {
         for s in b.inputs.values_mut() {
             if s == from {

@@ -16,6 +16,7 @@ mod limits;
 mod model;
 mod scalar;
 mod template;
+mod tracking;
 
 pub use kinds::{known_kinds, lookup, KindInfo, PortUse, KINDS};
 pub use limits::{apply_limit, Limit, LimitError, Reduction};

@@ -257,3 +257,170 @@ fn substeps_refine_the_integrator_and_zero_is_rejected() {
         assert!((a - b).abs() < 1e-14);
     }
 }
+
+/// A reactive-current loop in the ideal-tracking pattern: a voltage droop sets the reference
+/// i_ref = 0.1 + k_v·(u_ref − |v|); a PI (kp, ki) drives the command through a gain 0.8 into the
+/// converter's current lag t_i; the PI compares i_ref with the lag's output.
+fn tracking_template(kp: f64, ki: f64) -> Template {
+    let limits = [LimitKind::ToZero, LimitKind::IdealTracking];
+    Template {
+        name: "tracking".into(),
+        description: String::new(),
+        f_nom_hz: 50.0,
+        outputs: OutputMap {
+            i_re: "i_r".into(),
+            i_im: "e".into(),
+            p: "u".into(),
+            q: "i_ref".into(),
+        },
+        parameters: vec![
+            param("kp", kp, [1e-6, 1e6], &limits),
+            param("ki", ki, [1e-6, 1e8], &limits),
+            param("t_i", 0.02, [1e-6, 1.0], &[LimitKind::ToZero]),
+            param("k_v", 2.0, [1e-3, 10.0], &[LimitKind::ToZero]),
+        ],
+        blocks: vec![
+            BlockSpec::new("u", "magnitude")
+                .input("re", "v_re")
+                .input("im", "v_im"),
+            BlockSpec::new("u_ref", "setpoint").option("initial", "u"),
+            BlockSpec::new("drop", "sum").terms(&["+u_ref", "-u"]),
+            BlockSpec::new("extra", "gain")
+                .input("u", "drop")
+                .param("k", name("k_v")),
+            BlockSpec::new("i_0", "constant").param("value", ParamRef::Value(0.1)),
+            BlockSpec::new("i_ref", "sum").terms(&["+i_0", "+extra"]),
+            BlockSpec::new("e", "sum").terms(&["+i_ref", "-i_r"]),
+            // the PI starts where the lag's input equals the reference (at rest)
+            BlockSpec::new("ctrl_0", "gain")
+                .input("u", "i_ref")
+                .param("k", ParamRef::Value(1.25)),
+            BlockSpec::new("ctrl", "pi")
+                .input("u", "e")
+                .input("init", "ctrl_0")
+                .param("kp", name("kp"))
+                .param("ki", name("ki")),
+            BlockSpec::new("cmd", "gain")
+                .input("u", "ctrl")
+                .param("k", ParamRef::Value(0.8)),
+            BlockSpec::new("i_r", "lag")
+                .input("u", "cmd")
+                .param("t", name("t_i")),
+        ],
+    }
+}
+
+/// Outputs [i_r, e, u, i_ref] of `t` at its own values on a smooth 30 % dip sampled at `step_s`.
+fn tracking_run(t: &Template, step_s: f64, n: usize) -> [Vec<f64>; 4] {
+    let m = BlockModel::compile(t).unwrap();
+    let depth = |k: usize| {
+        let x = (k as f64 / n as f64 * 4.0 - 1.0).clamp(0.0, 1.0);
+        0.3 * (std::f64::consts::PI * x).sin().powi(2)
+    };
+    let v_re: Vec<f64> = (0..n).map(|k| 1.0 - depth(k)).collect();
+    let v_im = vec![0.0; n];
+    let input = InputSeries {
+        step_s,
+        v_re: &v_re,
+        v_im: &v_im,
+        f_grid: None,
+        initial: InitialOutputs::from_power(1.0, 0.0, 0.0, 0.1),
+    };
+    let o = m.simulate(&m.free_parameter_values(), &input, &EvalConfig::default());
+    [o.i_re, o.i_im, o.p, o.q]
+}
+
+#[test]
+fn ideal_tracking_rewrite_matches_the_loop_with_very_large_gains() {
+    // closed loop ≈ first order with τ = t_i/(0.8·kp) when ki/kp = 1/t_i (pole-zero
+    // cancellation, common practice); kp = 1000 gives τ = 25 µs against a 25 ms dip, sampled at
+    // 10 µs (the engine's explicit PI update needs the loop to stay slower than the step); the
+    // loop then lags the reference by about τ·di_ref/dt ≈ 0.3 % of the swing
+    let (kp, step_s, n) = (1000.0, 1e-5, 10_000);
+    let fast = tracking_template(kp, kp / 0.02);
+    let r = apply_limit(&fast, "kp", &Limit::IdealTracking).unwrap();
+    eprintln!("{}", r.sentence);
+    assert_eq!((r.states_before, r.states_after), (2, 0));
+    let mut removed = r.removed_parameters.clone();
+    removed.sort();
+    assert_eq!(removed, vec!["ki", "kp", "t_i"]);
+    assert!(r
+        .sentence
+        .contains("`i_r` (lag `i_r`) follows its reference `i_ref` exactly"));
+    // nothing but the reference is left for the controlled current
+    assert!(r.template.blocks.iter().all(|b| b.name != "i_r"));
+    assert_eq!(r.template.outputs.i_re, "i_ref");
+
+    let original = tracking_run(&fast, step_s, n);
+    let rewritten = tracking_run(&r.template, step_s, n);
+    let swing = original[3].iter().fold(f64::MIN, |a, &b| a.max(b))
+        - original[3].iter().fold(f64::MAX, |a, &b| a.min(b));
+    assert!(swing > 0.5, "the dip moves the reference by {swing}");
+    let max_diff = |a: &[f64], b: &[f64]| {
+        a.iter()
+            .zip(b)
+            .map(|(x, y)| (x - y).abs())
+            .fold(0.0, f64::max)
+    };
+    let diff_current = max_diff(&original[0], &rewritten[0]);
+    let diff_error = max_diff(&original[1], &rewritten[1]);
+    eprintln!("swing {swing:.3}: max |Δi_r| {diff_current:.2e}, max |Δe| {diff_error:.2e}");
+    assert!(diff_current < 0.01 * swing, "{diff_current}");
+    assert!(diff_error < 0.01 * swing, "{diff_error}");
+    assert!(max_diff(&original[3], &rewritten[3]) < 1e-12);
+    // a slow PI is visibly not ideal tracking: the rewrite is not trivially close
+    let slow = tracking_run(&tracking_template(1.0, 50.0), step_s, n);
+    let diff_slow = max_diff(&slow[0], &rewritten[0]);
+    assert!(
+        diff_slow > 10.0 * diff_current,
+        "slow {diff_slow} vs fast {diff_current}"
+    );
+}
+
+#[test]
+fn ideal_tracking_outside_its_pattern_names_the_block() {
+    // the chain's command read outside the loop while the reference varies: y = r + T·ṙ
+    let mut t = tracking_template(100.0, 5000.0);
+    t.outputs.p = "cmd".into();
+    match apply_limit(&t, "kp", &Limit::IdealTracking) {
+        Err(LimitError::Unsupported { block, reason, .. }) => {
+            assert_eq!(block, "i_r (lag)");
+            assert!(reason.contains("would need its derivative"), "{reason}");
+        }
+        other => panic!("{other:?}"),
+    }
+    // ... which is fine for a constant reference
+    let mut t = tracking_template(100.0, 5000.0);
+    t.outputs.p = "cmd".into();
+    t.blocks.retain(|b| b.name != "i_ref");
+    t.blocks
+        .push(BlockSpec::new("i_ref", "sum").terms(&["+i_0"]));
+    let r = apply_limit(&t, "kp", &Limit::IdealTracking).unwrap();
+    // the command holds i_ref / 0.8 so that the lag's input is the reference
+    let o = tracking_run(&r.template, 1e-3, 20);
+    assert!(o[2].iter().all(|c| (c - 0.1).abs() < 1e-12), "{:?}", o[2]);
+    // a second lag in the loop: relative degree two, refused at that block
+    let mut t = tracking_template(100.0, 5000.0);
+    t.blocks.push(
+        BlockSpec::new("cmd_filter", "lag")
+            .input("u", "ctrl")
+            .param("t", name("t_i")),
+    );
+    t.blocks
+        .iter_mut()
+        .find(|b| b.name == "cmd")
+        .unwrap()
+        .inputs
+        .insert("u".into(), "cmd_filter".into());
+    match apply_limit(&t, "kp", &Limit::IdealTracking) {
+        Err(LimitError::Unsupported { block, reason, .. }) => {
+            assert_eq!(block, "cmd_filter (lag)", "{reason}");
+        }
+        other => panic!("{other:?}"),
+    }
+    // not a PI gain
+    assert!(matches!(
+        apply_limit(&tracking_template(1.0, 1.0), "k_v", &Limit::IdealTracking),
+        Err(LimitError::NotDeclared { .. })
+    ));
+}
