@@ -264,7 +264,8 @@ pub struct BlockModel {
     run_varying: Vec<usize>,
     /// blocks whose output is a state, in declaration order
     state_outputs: Vec<usize>,
-    /// blocks with a state update, in declaration order
+    /// blocks with a state slot (continuous states or memories), in declaration order: what
+    /// each update visits
     stateful: Vec<usize>,
     /// all blocks in initialisation order
     init_order: Vec<usize>,
@@ -394,6 +395,8 @@ impl BlockModel {
 
         let mut blocks = Vec::new();
         let mut state_len = 0;
+        // blocks with a state slot (continuous states or memories), in declaration order
+        let mut stateful = Vec::new();
         // dependencies for the running order and for initialisation
         let mut run_deps: HashMap<usize, Vec<usize>> = HashMap::new();
         let mut init_deps: HashMap<usize, Vec<usize>> = HashMap::new();
@@ -738,6 +741,9 @@ impl BlockModel {
                 "hold" => Op::Hold { u: port("u") },
                 other => unreachable!("kind `{other}` is in the catalogue but not compiled"),
             };
+            if info.states + info.memories > 0 {
+                stateful.push(blocks.len());
+            }
             blocks.push(Compiled {
                 name: b.name.clone(),
                 op,
@@ -810,22 +816,6 @@ impl BlockModel {
         }
         let state_outputs = (0..blocks.len())
             .filter(|&bi| blocks[bi].state_output)
-            .collect();
-        let stateful = (0..blocks.len())
-            .filter(|&bi| {
-                matches!(
-                    blocks[bi].op,
-                    Op::Lag { .. }
-                        | Op::Washout { .. }
-                        | Op::LeadLag { .. }
-                        | Op::Integrator { .. }
-                        | Op::Pi { .. }
-                        | Op::Pll { .. }
-                        | Op::Detector { .. }
-                        | Op::RateLimiter { .. }
-                        | Op::Delay { .. }
-                )
-            })
             .collect();
         let values = template.parameters.iter().map(|p| p.value).collect();
         let free = template
