@@ -796,6 +796,32 @@ fn continuous_poles(discrete: &[Complex64], dt_s: f64) -> Vec<Complex64> {
         .collect()
 }
 
+/// (A, B) of the per-input modal realisation of `poles`: per input j one block of modal states
+/// (a real pole s: dz/dt = s z + u_j; a pair σ ± jω: [[σ, ω], [−ω, σ]] driven through (1, 0)),
+/// of order N_INPUTS × (states per input).
+fn per_input_realisation(poles: &[Complex64]) -> (DMatrix<f64>, DMatrix<f64>) {
+    let block: usize = poles.iter().map(|p| if p.im == 0.0 { 1 } else { 2 }).sum();
+    let n = block * N_INPUTS;
+    let mut a = DMatrix::zeros(n, n);
+    let mut b = DMatrix::zeros(n, N_INPUTS);
+    for j in 0..N_INPUTS {
+        let mut at = j * block;
+        for p in poles {
+            a[(at, at)] = p.re;
+            b[(at, j)] = 1.0;
+            if p.im == 0.0 {
+                at += 1;
+            } else {
+                a[(at + 1, at + 1)] = p.re;
+                a[(at, at + 1)] = p.im;
+                a[(at + 1, at)] = -p.im;
+                at += 2;
+            }
+        }
+    }
+    (a, b)
+}
+
 /// The correction fitted for free run, as the surrogate runs it (open loop, from the inputs).
 ///
 /// DMD with control fits one-step prediction with the residual itself as state; run open loop,
@@ -814,27 +840,8 @@ fn free_run_correction(
     residuals: &[[Vec<f64>; 2]],
     ridge: f64,
 ) -> Result<Correction, HybridError> {
-    let block: usize = poles.iter().map(|p| if p.im == 0.0 { 1 } else { 2 }).sum();
-    let n = block * N_INPUTS;
-    let mut a = DMatrix::zeros(n, n);
-    let mut b = DMatrix::zeros(n, N_INPUTS);
-    for j in 0..N_INPUTS {
-        let mut at = j * block;
-        for p in poles {
-            if p.im == 0.0 {
-                a[(at, at)] = p.re;
-                b[(at, j)] = 1.0;
-                at += 1;
-            } else {
-                a[(at, at)] = p.re;
-                a[(at + 1, at + 1)] = p.re;
-                a[(at, at + 1)] = p.im;
-                a[(at + 1, at)] = -p.im;
-                b[(at, j)] = 1.0;
-                at += 2;
-            }
-        }
-    }
+    let (a, b) = per_input_realisation(poles);
+    let n = a.nrows();
     let outputs = CORRECTION_OUTPUTS.len();
     let unfitted = Correction {
         a: rows_of(&a),
@@ -994,25 +1001,9 @@ mod tests {
             Complex64::new(-3.0, 25.0),
             Complex64::new(-12.0, 140.0),
         ];
-        let block = 6;
-        let n = block * N_INPUTS;
-        let mut a = DMatrix::zeros(n, n);
-        let mut b = DMatrix::zeros(n, N_INPUTS);
-        for j in 0..N_INPUTS {
-            let mut at = j * block;
-            for p in &poles {
-                a[(at, at)] = p.re;
-                b[(at, j)] = 1.0;
-                if p.im != 0.0 {
-                    a[(at + 1, at + 1)] = p.re;
-                    a[(at, at + 1)] = p.im;
-                    a[(at + 1, at)] = -p.im;
-                    at += 2;
-                } else {
-                    at += 1;
-                }
-            }
-        }
+        let (a, b) = per_input_realisation(&poles);
+        let n = a.nrows();
+        assert_eq!(n, 6 * N_INPUTS);
         let c = DMatrix::from_fn(2, n, |i, j| ((3 * i + 7 * j) as f64 * 0.37).sin());
         let d = DMatrix::from_fn(2, N_INPUTS, |i, j| 0.1 * (i + j) as f64);
         let full = Correction {
