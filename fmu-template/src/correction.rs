@@ -67,7 +67,9 @@ impl PreFault {
         // v·e^{−jθ₀}
         let v_d = v_re * c + v_im * s;
         let v_q = -v_re * s + v_im * c;
-        let u = v_re.hypot(v_im);
+        // |v| as √(re² + im²), not hypot: per-unit magnitudes cannot overflow, and hypot's
+        // care costs more than the rest of this function
+        let u = (v_re * v_re + v_im * v_im).sqrt();
         let du = u - self.u0;
         let dip = |x: f64| (DIP_THRESHOLD_PU - x).max(0.0);
         [
@@ -349,11 +351,21 @@ impl CorrectionStepper {
             self.cache = Some(Discrete::new(&self.a, &self.b, h_s));
         }
         let d = self.cache.as_ref().expect("filled above");
-        for (i, next) in self.next.iter_mut().enumerate() {
-            let g = &d.gamma[i * N_INPUTS..(i + 1) * N_INPUTS];
-            let mut acc: f64 = g.iter().zip(u).map(|(g, u)| g * u).sum();
-            let (from, to) = (d.phi_row[i], d.phi_row[i + 1]);
-            for (col, v) in d.phi_col[from..to].iter().zip(&d.phi_val[from..to]) {
+        // row by row: Γ's row (fixed length, so the product unrolls) and Φ's few entries
+        let rows = self
+            .next
+            .iter_mut()
+            .zip(d.gamma.chunks_exact(N_INPUTS))
+            .zip(d.phi_row.windows(2));
+        for ((next, g), span) in rows {
+            let mut acc = 0.0;
+            for k in 0..N_INPUTS {
+                acc += g[k] * u[k];
+            }
+            for (col, v) in d.phi_col[span[0]..span[1]]
+                .iter()
+                .zip(&d.phi_val[span[0]..span[1]])
+            {
                 acc += v * z[*col];
             }
             *next = acc;

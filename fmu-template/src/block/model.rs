@@ -1478,6 +1478,29 @@ impl<S: Scalar> BlockRun<S> {
         y
     }
 
+    /// As [`BlockRun::step`] for the input of the last [`BlockRun::peek`] into `probe`, when
+    /// nothing has stepped since: the probe already holds every signal of this sample, so it
+    /// is swapped in instead of evaluated again (same values, bit for bit). `probe` receives
+    /// the old signals (scratch for the next peek).
+    ///
+    /// The caller guarantees that `probe` was filled by `peek` at the present state; a
+    /// `probe` of the wrong length is a caller bug (panics).
+    pub fn step_from_probe(&mut self, model: &BlockModel, probe: &mut Vec<S>) -> [S; 4] {
+        assert_eq!(probe.len(), self.signals.len(), "probe from another model");
+        std::mem::swap(&mut self.signals, probe);
+        let o = model.outputs;
+        let sig = &self.signals;
+        let y = [sig[o[0]], sig[o[1]], sig[o[2]], sig[o[3]]];
+        self.update(model);
+        for _ in 1..self.substeps {
+            let mut sig = std::mem::take(&mut self.signals);
+            self.evaluate(model, &mut sig);
+            self.signals = sig;
+            self.update(model);
+        }
+        y
+    }
+
     /// The outputs (i_re, i_im, p, q) the next `step` would report for `input`, without
     /// advancing; `scratch` holds the signals of the probe (reused between calls, so a caller
     /// that keeps it allocates nothing).
