@@ -60,37 +60,74 @@ pub struct PreFault {
 }
 
 impl PreFault {
+    /// This operating point with its rotation evaluated once (what a runtime steps with).
+    pub fn frame(&self) -> PreFaultFrame {
+        let (sin, cos) = self.theta0.sin_cos();
+        PreFaultFrame {
+            pre_fault: *self,
+            sin,
+            cos,
+        }
+    }
+
+    /// The correction's input vector for terminal voltage (v_re, v_im) and frequency f_grid
+    /// (see [`PreFaultFrame::input`], THE one definition).
+    pub fn input(&self, v_re: f64, v_im: f64, f_grid: f64) -> [f64; N_INPUTS] {
+        self.frame().input(v_re, v_im, f_grid)
+    }
+
+    /// A current correction (Δi_d, Δi_q) in the pre-fault frame, rotated to the network frame.
+    pub fn to_network(&self, di_d: f64, di_q: f64) -> (f64, f64) {
+        self.frame().to_network(di_d, di_q)
+    }
+
+    /// A network-frame current (re, im) in the pre-fault frame (inverse of `to_network`).
+    pub fn from_network(&self, i_re: f64, i_im: f64) -> (f64, f64) {
+        self.frame().from_network(i_re, i_im)
+    }
+}
+
+/// A [`PreFault`] with sin θ₀ and cos θ₀ computed once.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct PreFaultFrame {
+    pub pre_fault: PreFault,
+    sin: f64,
+    cos: f64,
+}
+
+impl PreFaultFrame {
     /// The correction's input vector for terminal voltage (v_re, v_im) and frequency f_grid.
     /// THE one definition, used by the tool when fitting and by the runtime when stepping.
     pub fn input(&self, v_re: f64, v_im: f64, f_grid: f64) -> [f64; N_INPUTS] {
-        let (s, c) = self.theta0.sin_cos();
+        let (s, c) = (self.sin, self.cos);
+        let pf = &self.pre_fault;
         // v·e^{−jθ₀}
         let v_d = v_re * c + v_im * s;
         let v_q = -v_re * s + v_im * c;
         // |v| as √(re² + im²), not hypot: per-unit magnitudes cannot overflow, and hypot's
         // care costs more than the rest of this function
         let u = (v_re * v_re + v_im * v_im).sqrt();
-        let du = u - self.u0;
+        let du = u - pf.u0;
         let dip = |x: f64| (DIP_THRESHOLD_PU - x).max(0.0);
         [
-            v_d - self.u0,
+            v_d - pf.u0,
             v_q,
-            f_grid - self.f0,
-            self.p0 * du,
-            self.q0 * du,
-            dip(u) - dip(self.u0),
+            f_grid - pf.f0,
+            pf.p0 * du,
+            pf.q0 * du,
+            dip(u) - dip(pf.u0),
         ]
     }
 
     /// A current correction (Δi_d, Δi_q) in the pre-fault frame, rotated to the network frame.
     pub fn to_network(&self, di_d: f64, di_q: f64) -> (f64, f64) {
-        let (s, c) = self.theta0.sin_cos();
+        let (s, c) = (self.sin, self.cos);
         (di_d * c - di_q * s, di_d * s + di_q * c)
     }
 
     /// A network-frame current (re, im) in the pre-fault frame (inverse of `to_network`).
     pub fn from_network(&self, i_re: f64, i_im: f64) -> (f64, f64) {
-        let (s, c) = self.theta0.sin_cos();
+        let (s, c) = (self.sin, self.cos);
         (i_re * c + i_im * s, -i_re * s + i_im * c)
     }
 }
@@ -260,50 +297,105 @@ pub struct CorrectionStepper {
     next: Vec<f64>,
 }
 
-/// Φ(h) and Γ(h) of one step size, stored for an O(entries) step: Φ row by row without its
-/// exact zeros (a modal, block-diagonal A gives a block-diagonal Φ, so a step costs O(order)
-/// instead of O(order²)), Γ dense row-major.
+/// Φ(h) and Γ(h) of one step size, stored for a cheap step: Φ without its exact zeros (a
+/// modal, block-diagonal A gives a block-diagonal Φ, so a step costs O(order) instead of
+/// O(order²)), Γ column by column. The loops run over the states with independent sums (they
+/// vectorise), not along one long chain of additions.
 #[derive(Debug, Clone)]
 struct Discrete {
     h: f64,
-    /// row k's entries are `phi_col[phi_row[k]..phi_row[k + 1]]`, `phi_val[..]`
-    phi_row: Vec<usize>,
-    phi_col: Vec<usize>,
-    phi_val: Vec<f64>,
-    gamma: Vec<f64>,
+    phi: Phi,
+    /// input j's column of Γ is `gamma_cols[j * order..(j + 1) * order]`
+    gamma_cols: Vec<f64>,
+}
+
+#[derive(Debug, Clone)]
+enum Phi {
+    /// nonzeros only on the three central diagonals (1×1 and 2×2 modal blocks):
+    /// next[i] = lower[i]·z[i−1] + diag[i]·z[i] + upper[i]·z[i+1] (lower[0] = upper[n−1] = 0)
+    Tridiagonal {
+        lower: Vec<f64>,
+        diag: Vec<f64>,
+        upper: Vec<f64>,
+    },
+    /// any other Φ, row by row: row k's entries are `col[row[k]..row[k + 1]]`, `val[..]`
+    Sparse {
+        row: Vec<usize>,
+        col: Vec<usize>,
+        val: Vec<f64>,
+    },
 }
 
 impl Discrete {
     fn new(a: &DMatrix<f64>, b: &DMatrix<f64>, h: f64) -> Self {
         let (phi, gamma) = zoh(a, b, h);
         let n = phi.nrows();
-        let mut phi_row = Vec::with_capacity(n + 1);
-        let mut phi_col = Vec::new();
-        let mut phi_val = Vec::new();
-        phi_row.push(0);
-        for i in 0..n {
-            for j in 0..n {
-                let v = phi[(i, j)];
-                // an exact zero contributes exactly nothing (the states are finite)
-                if v != 0.0 {
-                    phi_col.push(j);
-                    phi_val.push(v);
-                }
+        // an exact zero contributes exactly nothing (the states are finite)
+        #[allow(clippy::float_cmp)]
+        let tridiagonal = (0..n).all(|i| (0..n).all(|j| i.abs_diff(j) <= 1 || phi[(i, j)] == 0.0));
+        let phi = if tridiagonal {
+            Phi::Tridiagonal {
+                lower: (0..n)
+                    .map(|i| if i > 0 { phi[(i, i - 1)] } else { 0.0 })
+                    .collect(),
+                diag: (0..n).map(|i| phi[(i, i)]).collect(),
+                upper: (0..n)
+                    .map(|i| if i + 1 < n { phi[(i, i + 1)] } else { 0.0 })
+                    .collect(),
             }
-            phi_row.push(phi_col.len());
-        }
-        let gamma = (0..n)
-            .flat_map(|i| (0..N_INPUTS).map(move |j| (i, j)))
+        } else {
+            let mut row = Vec::with_capacity(n + 1);
+            let mut col = Vec::new();
+            let mut val = Vec::new();
+            row.push(0);
+            for i in 0..n {
+                for j in 0..n {
+                    let v = phi[(i, j)];
+                    if v != 0.0 {
+                        col.push(j);
+                        val.push(v);
+                    }
+                }
+                row.push(col.len());
+            }
+            Phi::Sparse { row, col, val }
+        };
+        let gamma_cols = (0..N_INPUTS)
+            .flat_map(|j| (0..n).map(move |i| (i, j)))
             .map(|(i, j)| gamma[(i, j)])
             .collect();
-        Self {
-            h,
-            phi_row,
-            phi_col,
-            phi_val,
-            gamma,
+        Self { h, phi, gamma_cols }
+    }
+
+    /// Entries of Φ a step multiplies.
+    fn phi_entries(&self) -> usize {
+        match &self.phi {
+            #[allow(clippy::float_cmp)]
+            Phi::Tridiagonal { lower, diag, upper } => [lower, diag, upper]
+                .iter()
+                .map(|d| d.iter().filter(|v| **v != 0.0).count())
+                .sum(),
+            Phi::Sparse { val, .. } => val.len(),
         }
     }
+}
+
+/// Σ aₖ·bₖ with four independent partial sums (no single chain of additions).
+fn dot(a: &[f64], b: &[f64]) -> f64 {
+    let mut acc = [0.0; 4];
+    let (a4, b4) = (a.chunks_exact(4), b.chunks_exact(4));
+    let tail: f64 = a4
+        .remainder()
+        .iter()
+        .zip(b4.remainder())
+        .map(|(x, y)| x * y)
+        .sum();
+    for (x, y) in a4.zip(b4) {
+        for k in 0..4 {
+            acc[k] += x[k] * y[k];
+        }
+    }
+    (acc[0] + acc[1]) + (acc[2] + acc[3]) + tail
 }
 
 impl CorrectionStepper {
@@ -331,7 +423,7 @@ impl CorrectionStepper {
     /// Entries of Φ stepped per step at the cached step size (order² for a dense A, about
     /// 2·order for a modal one); `None` before the first step.
     pub fn phi_entries(&self) -> Option<usize> {
-        self.cache.as_ref().map(|d| d.phi_val.len())
+        self.cache.as_ref().map(Discrete::phi_entries)
     }
 
     /// z ← Φ(h) z + Γ(h) u: exact for an input held over the step. Allocates nothing once the
@@ -351,26 +443,54 @@ impl CorrectionStepper {
             self.cache = Some(Discrete::new(&self.a, &self.b, h_s));
         }
         let d = self.cache.as_ref().expect("filled above");
-        // row by row: Γ's row (fixed length, so the product unrolls) and Φ's few entries
-        let rows = self
-            .next
-            .iter_mut()
-            .zip(d.gamma.chunks_exact(N_INPUTS))
-            .zip(d.phi_row.windows(2));
-        for ((next, g), span) in rows {
-            let mut acc = 0.0;
-            for k in 0..N_INPUTS {
-                acc += g[k] * u[k];
+        let next = &mut self.next;
+        match &d.phi {
+            Phi::Tridiagonal { lower, diag, upper } => {
+                for ((x, p), zi) in next.iter_mut().zip(diag).zip(z.iter()) {
+                    *x = p * zi;
+                }
+                for ((x, p), zi) in next[1..].iter_mut().zip(&lower[1..]).zip(z.iter()) {
+                    *x += p * zi;
+                }
+                for ((x, p), zi) in next.iter_mut().zip(upper.iter()).zip(&z[1..]) {
+                    *x += p * zi;
+                }
             }
-            for (col, v) in d.phi_col[span[0]..span[1]]
-                .iter()
-                .zip(&d.phi_val[span[0]..span[1]])
-            {
-                acc += v * z[*col];
+            Phi::Sparse { row, col, val } => {
+                for (x, span) in next.iter_mut().zip(row.windows(2)) {
+                    *x = col[span[0]..span[1]]
+                        .iter()
+                        .zip(&val[span[0]..span[1]])
+                        .map(|(c, v)| v * z[*c])
+                        .sum();
+                }
             }
-            *next = acc;
         }
-        z.copy_from_slice(&self.next);
+        // Γu, four states at a time with their sums held in registers across the inputs
+        let g = &d.gamma_cols;
+        let mut i = 0;
+        while i + 4 <= n {
+            let mut acc = [next[i], next[i + 1], next[i + 2], next[i + 3]];
+            for (j, uj) in u.iter().enumerate() {
+                let col = &g[j * n + i..j * n + i + 4];
+                for k in 0..4 {
+                    acc[k] += col[k] * uj;
+                }
+            }
+            next[i..i + 4].copy_from_slice(&acc);
+            i += 4;
+        }
+        for (r, x) in next.iter_mut().enumerate().skip(i) {
+            for (j, uj) in u.iter().enumerate() {
+                *x += g[j * n + r] * uj;
+            }
+        }
+        // a mode that has died away is set to exactly zero before it reaches the subnormal
+        // range, where every operation on it costs ~100 times more (the state is in per unit:
+        // below 1e-150 it carries nothing)
+        for (zi, x) in z.iter_mut().zip(next.iter()) {
+            *zi = if x.abs() < 1e-150 { 0.0 } else { *x };
+        }
     }
 
     /// Δy = C z + D u: (Δi_d, Δi_q) in the pre-fault frame.
@@ -378,17 +498,7 @@ impl CorrectionStepper {
         let n = self.order();
         assert_eq!(z.len(), n, "correction state length");
         let row = |k: usize| {
-            let du: f64 = self.d[k * N_INPUTS..(k + 1) * N_INPUTS]
-                .iter()
-                .zip(u)
-                .map(|(d, u)| d * u)
-                .sum();
-            let cz: f64 = self.c[k * n..(k + 1) * n]
-                .iter()
-                .zip(z)
-                .map(|(c, z)| c * z)
-                .sum();
-            du + cz
+            dot(&self.d[k * N_INPUTS..(k + 1) * N_INPUTS], u) + dot(&self.c[k * n..(k + 1) * n], z)
         };
         (row(0), row(1))
     }

@@ -6,7 +6,7 @@
 //! with the host's input held; the correction is stepped exactly over the host's step.
 
 use crate::block::{BlockModel, BlockRun, InitialOutputs, Sample, SimulatorSnapshot, Template};
-use crate::correction::{Correction, CorrectionStepper, PreFault};
+use crate::correction::{Correction, CorrectionStepper, PreFault, PreFaultFrame};
 use crate::cosim::{CoSimError, CoSimModel, Inputs, Outputs, Setpoints};
 use serde::{Deserialize, Serialize};
 use std::cell::{Cell, RefCell};
@@ -69,7 +69,7 @@ struct Live {
     z: Vec<f64>,
     /// the correction's state of a step in progress (kept only when finite)
     z_trial: Vec<f64>,
-    pre_fault: PreFault,
+    pre_fault: PreFaultFrame,
 }
 
 /// Everything of a [`HybridCoSim`] that evolves (nothing before initialisation).
@@ -166,7 +166,8 @@ impl CoSimModel for HybridCoSim {
                 f0: inputs.f_grid,
                 p0: setpoints.p_ref,
                 q0: setpoints.q_ref,
-            },
+            }
+            .frame(),
         });
         Ok(())
     }
@@ -260,7 +261,7 @@ impl CoSimModel for HybridCoSim {
                 block_steps: r.block_steps,
                 elapsed_s: r.elapsed_s,
                 z: r.z.clone(),
-                pre_fault: r.pre_fault,
+                pre_fault: r.pre_fault.pre_fault,
             }),
         }
     }
@@ -291,7 +292,7 @@ impl CoSimModel for HybridCoSim {
             elapsed_s: r.elapsed_s,
             z: r.z.clone(),
             z_trial: r.z.clone(),
-            pre_fault: r.pre_fault,
+            pre_fault: r.pre_fault.frame(),
         });
         Ok(())
     }

@@ -620,7 +620,7 @@ pub fn fit_hybrid(
         .par_iter()
         .map(|c| {
             let o = evaluate(&reduced_model, c)?;
-            let pf = c.pre_fault();
+            let pf = c.pre_fault().frame();
             let mut rd = Vec::with_capacity(c.data.len());
             let mut rq = Vec::with_capacity(c.data.len());
             for k in 0..c.data.len() {
@@ -687,7 +687,7 @@ pub fn fit_hybrid(
     for (c, r) in training.iter().zip(&residuals) {
         let n = c.data.len();
         let series = DMatrix::from_fn(2, n, |ch, k| r[ch][k]);
-        let pf = c.pre_fault();
+        let pf = c.pre_fault().frame();
         let u = DMatrix::from_fn(N_INPUTS, n, |row, k| {
             let i = c.inputs(k);
             pf.input(i.v_re, i.v_im, i.f_grid)[row]
@@ -860,7 +860,7 @@ fn free_run_correction(
         .zip(residuals)
         .map(|(c, r)| {
             let mut stepper = stepper.clone();
-            let pf = c.pre_fault();
+            let pf = c.pre_fault().frame();
             let len = c.data.len();
             let mut phi = DMatrix::zeros(len, n + N_INPUTS);
             let mut z = vec![0.0; n];
