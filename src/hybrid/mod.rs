@@ -780,19 +780,7 @@ pub fn fit_hybrid(
             step_s,
             &ridges,
         )?;
-        progress(&format!(
-            "cross-validation: physics alone {:.3} %, hybrid as fitted {:.3} %, chosen ridge {:e} \
-             with output shrink (Δi_d {}, Δi_q {}): {:.3} %",
-            cv.reduced_percent,
-            cv.rows
-                .iter()
-                .find(|r| r.ridge == cv.ridge)
-                .map_or(f64::NAN, |r| r.fitted_percent),
-            cv.ridge,
-            cv.shrink[0],
-            cv.shrink[1],
-            cv.hybrid_percent
-        ));
+        progress(&format!("cross-validation: {}", cv.summary()));
         (cv.ridge, cv.shrink, Some(cv))
     } else {
         (config.ridge.unwrap_or(RIDGE_CANDIDATES[0]), [1.0; 2], None)
