@@ -130,6 +130,9 @@ pub fn run(req: Request) -> Result<i32, Error> {
         100.0 * outcome.compression.keep_fraction,
         outcome.compression.relative_error
     );
+    if let Some(cv) = &outcome.cross_validation {
+        println!("{}", cv.summary());
+    }
     println!(
         "held-out ({} cases) NRMSE % of rating: mean reduced {mean_reduced:.3} → hybrid {mean_hybrid:.3}; median P {p_red:.3} → {p_hyb:.3}; median Q {q_red:.3} → {q_hyb:.3}",
         outcome.validation.len()

@@ -104,9 +104,19 @@ pub struct HybridConfig {
     stability_margin: f64,
     enforce_stability: bool,
     physics_iterations: usize,
-    ridge: f64,
+    /// `None`: chosen by cross-validation from [`RIDGE_CANDIDATES`]
+    ridge: Option<f64>,
+    cross_validate: bool,
     windows: WindowConfig,
 }
+
+/// Ridge weights the leave-one-trace-out cross-validation chooses from (relative to the mean
+/// diagonal of the scaled normal matrix; a grid by decades, common practice for ridge).
+pub const RIDGE_CANDIDATES: [f64; 6] = [1e-6, 1e-4, 1e-3, 1e-2, 1e-1, 0.5];
+
+/// Shrink factors of each output row of the output map the cross-validation chooses from
+/// (0: that output of the correction is dropped; 1: kept as fitted).
+pub const SHRINK_CANDIDATES: [f64; 5] = [0.0, 0.25, 0.5, 0.75, 1.0];
 
 impl Default for HybridConfig {
     fn default() -> Self {
@@ -119,7 +129,8 @@ impl Default for HybridConfig {
             stability_margin: 0.999,
             enforce_stability: true,
             physics_iterations: 25,
-            ridge: 1e-6,
+            ridge: None,
+            cross_validate: true,
             windows: WindowConfig::default(),
         }
     }
@@ -188,8 +199,8 @@ impl HybridConfig {
         self.physics_iterations = n;
         Ok(self)
     }
-    /// Ridge weight of the output-map fit, relative to the mean diagonal of the (scaled) normal
-    /// matrix, in [0, 1).
+    /// A fixed ridge weight of the output-map fit, relative to the mean diagonal of the (scaled)
+    /// normal matrix, in [0, 1). Without it the cross-validation chooses it.
     pub fn with_ridge(mut self, r: f64) -> Result<Self, HybridError> {
         if !(0.0..1.0).contains(&r) {
             return Err(HybridError::Setting {
@@ -198,8 +209,17 @@ impl HybridConfig {
                 expected: "a relative weight in [0, 1)",
             });
         }
-        self.ridge = r;
+        self.ridge = Some(r);
         Ok(self)
+    }
+    /// Leave-one-trace-out cross-validation of the correction on the training traces (default
+    /// on): it chooses the ridge weight (unless fixed) and shrinks each output of the
+    /// correction towards zero, down to dropping it, where the left-out traces say the fitted
+    /// correction does not help. Off: the correction is exported as fitted, with the fixed
+    /// ridge (or the smallest candidate).
+    pub fn with_cross_validation(mut self, on: bool) -> Self {
+        self.cross_validate = on;
+        self
     }
     pub fn with_windows(mut self, w: WindowConfig) -> Self {
         self.windows = w;
@@ -457,6 +477,71 @@ pub struct HybridOutcome {
     pub residual_rows: Vec<(String, Vec<f64>)>,
     pub residual_time_s: Vec<f64>,
     pub windows: WindowConfig,
+    /// The leave-one-trace-out cross-validation that chose the ridge and the output shrink
+    /// (`None` when it was switched off).
+    pub cross_validation: Option<CrossValidation>,
+}
+
+/// One ridge candidate of the cross-validation: mean NRMSE (% of rating) over the left-out
+/// traces and the four signals, for the correction as fitted and with its best output shrink.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct CvRow {
+    pub ridge: f64,
+    pub fitted_percent: f64,
+    /// Best shrink factors of (Δi_d, Δi_q) for this ridge, from [`SHRINK_CANDIDATES`].
+    pub shrink: [f64; 2],
+    pub shrunk_percent: f64,
+}
+
+/// Leave-one-trace-out cross-validation of the correction on the training traces: per fold the
+/// poles (DMD with control) and the output map are refitted without the left-out trace, which
+/// is then run open loop, as the surrogate runs, and scored with the validation's metric (NRMSE
+/// of P, Q, i_p, i_q). The physics is the one fitted on all training traces (refitting it per
+/// fold would cost a template fit each), so the figures lean slightly optimistic for the
+/// physics, not for the correction.
+#[derive(Debug, Clone, PartialEq)]
+pub struct CrossValidation {
+    pub folds: usize,
+    /// The physics alone on the left-out traces (%).
+    pub reduced_percent: f64,
+    pub rows: Vec<CvRow>,
+    /// The choice: ridge, shrink of (Δi_d, Δi_q), and its cross-validated NRMSE (%).
+    pub ridge: f64,
+    pub shrink: [f64; 2],
+    pub hybrid_percent: f64,
+}
+
+impl CrossValidation {
+    /// One sentence for the report and the CLI.
+    pub fn summary(&self) -> String {
+        let rows: Vec<String> = self
+            .rows
+            .iter()
+            .map(|r| {
+                format!(
+                    "ridge {:e}: {:.3} % as fitted, {:.3} % with shrink ({}, {})",
+                    r.ridge, r.fitted_percent, r.shrink[0], r.shrink[1], r.shrunk_percent
+                )
+            })
+            .collect();
+        format!(
+            "leave-one-trace-out cross-validation over {} training traces (mean NRMSE of P, Q, \
+             i_p, i_q, % of rating): physics alone {:.3} %; {}; chosen ridge {:e} with the \
+             output map shrunk by {} (Δi_d) and {} (Δi_q): {:.3} %{}",
+            self.folds,
+            self.reduced_percent,
+            rows.join("; "),
+            self.ridge,
+            self.shrink[0],
+            self.shrink[1],
+            self.hybrid_percent,
+            if self.shrink.iter().all(|&s| s == 0.0) {
+                " — the data do not support a correction: none exported"
+            } else {
+                ""
+            }
+        )
+    }
 }
 
 impl HybridOutcome {
@@ -616,7 +701,7 @@ pub fn fit_hybrid(
     );
 
     progress("residuals: detailed − physics on the training traces");
-    let residuals: Vec<[Vec<f64>; 2]> = training
+    let (residuals, physics_outputs): (Vec<[Vec<f64>; 2]>, Vec<OutputSeries<f64>>) = training
         .par_iter()
         .map(|c| {
             let o = evaluate(&reduced_model, c)?;
@@ -638,9 +723,11 @@ pub fn fit_hybrid(
                     });
                 }
             }
-            Ok([rd, rq])
+            Ok(([rd, rq], o))
         })
-        .collect::<Result<_, HybridError>>()?;
+        .collect::<Result<Vec<_>, HybridError>>()?
+        .into_iter()
+        .unzip();
 
     progress(&format!(
         "compressed sensing: DCT keeping {:.1} % of coefficients",
@@ -677,56 +764,37 @@ pub fn fit_hybrid(
         "DMD with control: {} delays, rank {:?}",
         config.delays, config.rank
     ));
-    // one snapshot matrix of all training traces, side by side; the one spurious transition
-    // between two traces joins a settled end (residual and input near 0) to a steady start
-    // (exactly 0), so it carries almost nothing
-    let mut states: Vec<DMatrix<f64>> = Vec::new();
-    let mut inputs: Vec<DMatrix<f64>> = Vec::new();
-    // the raw residuals, not their DCT compression: kept at 5 %, the compression loses more than
-    // half of the residual's energy (see the report), which the correction needs
-    for (c, r) in training.iter().zip(&residuals) {
-        let n = c.data.len();
-        let series = DMatrix::from_fn(2, n, |ch, k| r[ch][k]);
-        let pf = c.pre_fault().frame();
-        let u = DMatrix::from_fn(N_INPUTS, n, |row, k| {
-            let i = c.inputs(k);
-            pf.input(i.v_re, i.v_im, i.f_grid)[row]
-        });
-        let e = delay_embed(&series, &u, config.delays, 1)?;
-        states.push(e.states);
-        inputs.push(e.inputs);
-    }
-    let concat = |ms: &[DMatrix<f64>]| {
-        let rows = ms[0].nrows();
-        let cols: usize = ms.iter().map(|m| m.ncols()).sum();
-        let mut out = DMatrix::zeros(rows, cols);
-        let mut at = 0;
-        for m in ms {
-            out.columns_mut(at, m.ncols()).copy_from(m);
-            at += m.ncols();
-        }
-        out
+    let residual_refs: Vec<&[Vec<f64>; 2]> = residuals.iter().collect();
+    let pole_fit = correction_poles(&training, &residual_refs, config, step_s)?;
+    let (ridge, shrink, cross_validation) = if config.cross_validate {
+        progress(&format!(
+            "cross-validation: leave one of {} training traces out",
+            training.len()
+        ));
+        let ridges: Vec<f64> = config.ridge.map_or(RIDGE_CANDIDATES.to_vec(), |r| vec![r]);
+        let cv = cross_validate(
+            &training,
+            &residuals,
+            &physics_outputs,
+            config,
+            step_s,
+            &ridges,
+        )?;
+        progress(&format!("cross-validation: {}", cv.summary()));
+        (cv.ridge, cv.shrink, Some(cv))
+    } else {
+        (config.ridge.unwrap_or(RIDGE_CANDIDATES[0]), [1.0; 2], None)
     };
-    let snapshots = concat(&states);
-    let input_matrix = concat(&inputs);
-    let dmd_config = DmdConfig::default()
-        .with_rank(config.rank)?
-        .with_stability_margin(config.stability_margin)?
-        .with_enforce_stability(config.enforce_stability);
-    let fit = fit_dmdc(&snapshots, &input_matrix, step_s, &dmd_config)?;
-    if !config.enforce_stability && fit.stability.spectral_radius > 1.0 {
-        return Err(HybridError::Unstable {
-            radius: fit.stability.spectral_radius,
-        });
-    }
-    // a real eigenvalue ≤ 0 has no continuous-time counterpart at this sample step: it is
-    // moved to its modulus (same decay, no sign flip every sample) and reported
-    let (discrete, moved_to_real_axis) = fit.model.without_negative_real(1e-3)?;
-    let poles = continuous_poles(&discrete.eigenvalues()?, step_s);
-    let per_input = free_run_correction(&poles, &training, &residuals, config.ridge)?;
+    let poles = &pole_fit.poles;
+    let per_input = free_run_correction(poles, &training, &residual_refs, ridge, shrink)?;
     let fitted_order = per_input.order();
-    // the same transfer function with one state per output and pole: what the FMU steps
-    let correction = minimal_modal(&poles, &per_input);
+    // the same transfer function with one state per output and pole: what the FMU steps; a
+    // correction the cross-validation dropped entirely is exported as none at all
+    let correction = if shrink.iter().all(|&s| s == 0.0) {
+        Correction::none()
+    } else {
+        minimal_modal(poles, &per_input)
+    };
     let order = correction.order();
     let model = model_file("hybrid", &template, step_s, correction, bases, &training);
     model.validate().map_err(|source| HybridError::Runtime {
@@ -767,11 +835,12 @@ pub fn fit_hybrid(
         compression,
         order,
         fitted_order,
-        rank: fit.rank,
+        rank: pole_fit.fit.rank,
         delays: config.delays,
-        discrete_eigenvalues: discrete.eigenvalues()?,
-        moved_to_real_axis,
-        stability: fit.stability,
+        discrete_eigenvalues: pole_fit.discrete.eigenvalues()?,
+        moved_to_real_axis: pole_fit.moved_to_real_axis,
+        stability: pole_fit.fit.stability,
+        cross_validation,
         residual_rows,
         residual_time_s: training[0].time_s.clone(),
         windows: config.windows,
@@ -837,9 +906,110 @@ fn per_input_realisation(poles: &[Complex64]) -> (DMatrix<f64>, DMatrix<f64>) {
 fn free_run_correction(
     poles: &[Complex64],
     training: &[&Case],
-    residuals: &[[Vec<f64>; 2]],
+    residuals: &[&[Vec<f64>; 2]],
     ridge: f64,
+    shrink: [f64; 2],
 ) -> Result<Correction, HybridError> {
+    let (a, b) = per_input_realisation(poles);
+    let n = a.nrows();
+    let per_trace = free_run_features(poles, training, residuals)?;
+    let all: Vec<&Features> = per_trace.iter().collect();
+    let theta = output_map(&all, ridge)?; // p × outputs
+    let c = DMatrix::from_fn(CORRECTION_OUTPUTS.len(), n, |k, i| {
+        shrink[k] * theta[(i, k)]
+    });
+    let d = DMatrix::from_fn(CORRECTION_OUTPUTS.len(), N_INPUTS, |k, j| {
+        shrink[k] * theta[(n + j, k)]
+    });
+    Ok(Correction {
+        a: rows_of(&a),
+        b: rows_of(&b),
+        c: rows_of(&c),
+        d: rows_of(&d),
+    })
+}
+
+/// The poles of the correction and what their fit reports.
+struct PoleFit {
+    fit: crate::residual::dmd::DmdFit,
+    discrete: crate::residual::dmd::LinearModel,
+    moved_to_real_axis: Vec<MovedEigenvalue>,
+    poles: Vec<Complex64>,
+}
+
+/// DMD with control on the delay-embedded residuals of `cases`, driven by the correction's
+/// inputs; stability enforced; its poles in continuous time.
+fn correction_poles(
+    cases: &[&Case],
+    residuals: &[&[Vec<f64>; 2]],
+    config: &HybridConfig,
+    step_s: f64,
+) -> Result<PoleFit, HybridError> {
+    // one snapshot matrix of all training traces, side by side; the one spurious transition
+    // between two traces joins a settled end (residual and input near 0) to a steady start
+    // (exactly 0), so it carries almost nothing
+    let mut states: Vec<DMatrix<f64>> = Vec::new();
+    let mut inputs: Vec<DMatrix<f64>> = Vec::new();
+    // the raw residuals, not their DCT compression: kept at 5 %, the compression loses more than
+    // half of the residual's energy (see the report), which the correction needs
+    for (c, r) in cases.iter().zip(residuals) {
+        let n = c.data.len();
+        let series = DMatrix::from_fn(2, n, |ch, k| r[ch][k]);
+        let pf = c.pre_fault().frame();
+        let u = DMatrix::from_fn(N_INPUTS, n, |row, k| {
+            let i = c.inputs(k);
+            pf.input(i.v_re, i.v_im, i.f_grid)[row]
+        });
+        let e = delay_embed(&series, &u, config.delays, 1)?;
+        states.push(e.states);
+        inputs.push(e.inputs);
+    }
+    let concat = |ms: &[DMatrix<f64>]| {
+        let rows = ms[0].nrows();
+        let cols: usize = ms.iter().map(|m| m.ncols()).sum();
+        let mut out = DMatrix::zeros(rows, cols);
+        let mut at = 0;
+        for m in ms {
+            out.columns_mut(at, m.ncols()).copy_from(m);
+            at += m.ncols();
+        }
+        out
+    };
+    let snapshots = concat(&states);
+    let input_matrix = concat(&inputs);
+    let dmd_config = DmdConfig::default()
+        .with_rank(config.rank)?
+        .with_stability_margin(config.stability_margin)?
+        .with_enforce_stability(config.enforce_stability);
+    let fit = fit_dmdc(&snapshots, &input_matrix, step_s, &dmd_config)?;
+    if !config.enforce_stability && fit.stability.spectral_radius > 1.0 {
+        return Err(HybridError::Unstable {
+            radius: fit.stability.spectral_radius,
+        });
+    }
+    // a real eigenvalue ≤ 0 has no continuous-time counterpart at this sample step: it is
+    // moved to its modulus (same decay, no sign flip every sample) and reported
+    let (discrete, moved_to_real_axis) = fit.model.without_negative_real(1e-3)?;
+    let poles = continuous_poles(&discrete.eigenvalues()?, step_s);
+    Ok(PoleFit {
+        fit,
+        discrete,
+        moved_to_real_axis,
+        poles,
+    })
+}
+
+/// Features [z_k, u_k] (samples × (order + inputs)) and targets (samples × outputs) of one trace.
+type Features = (DMatrix<f64>, DMatrix<f64>);
+
+/// The states of the per-input realisation of `poles` simulated from each trace's inputs alone
+/// by the runtime's own stepper, as the runtime produces them (output at sample k from z_k and
+/// u_k, then a step over the sample step with u_k held), beside the residual to fit.
+fn free_run_features(
+    poles: &[Complex64],
+    cases: &[&Case],
+    residuals: &[&[Vec<f64>; 2]],
+) -> Result<Vec<Features>, HybridError> {
     let (a, b) = per_input_realisation(poles);
     let n = a.nrows();
     let outputs = CORRECTION_OUTPUTS.len();
@@ -853,9 +1023,7 @@ fn free_run_correction(
         trace: "(correction)".into(),
         source: CoSimError::ModelFile(e.to_string()),
     })?;
-    // features [z_k, u_k] and targets, per trace, as the runtime produces them: output at
-    // sample k from z_k and u_k, then a step over the sample step with u_k held
-    let per_trace: Vec<(DMatrix<f64>, DMatrix<f64>)> = training
+    Ok(cases
         .par_iter()
         .zip(residuals)
         .map(|(c, r)| {
@@ -877,11 +1045,19 @@ fn free_run_correction(
             let y = DMatrix::from_fn(len, outputs, |k, ch| r[ch][k]);
             (phi, y)
         })
-        .collect();
-    let p = n + N_INPUTS;
+        .collect())
+}
+
+/// The output map [C D]ᵀ (features × outputs): ridge-regularised linear least squares of the
+/// residual on the features over all given traces (ridge regression, Hoerl & Kennard,
+/// Technometrics 12(1), 1970; features scaled to unit RMS first, the ridge relative to the
+/// mean diagonal of the scaled normal matrix).
+fn output_map(per_trace: &[&Features], ridge: f64) -> Result<DMatrix<f64>, HybridError> {
+    let p = per_trace[0].0.ncols();
+    let outputs = per_trace[0].1.ncols();
     let mut gram = DMatrix::<f64>::zeros(p, p);
     let mut rhs = DMatrix::<f64>::zeros(p, outputs);
-    for (phi, y) in &per_trace {
+    for (phi, y) in per_trace {
         gram += phi.transpose() * phi;
         rhs += phi.transpose() * y;
     }
@@ -897,7 +1073,7 @@ fn free_run_correction(
             }
         })
         .collect();
-    let s = DMatrix::from_diagonal(&nalgebra::DVector::from_vec(scale.clone()));
+    let s = DMatrix::from_diagonal(&nalgebra::DVector::from_vec(scale));
     let mut g = &s * &gram * &s;
     let mean_diag = g.trace() / p as f64;
     for i in 0..p {
@@ -907,14 +1083,138 @@ fn free_run_correction(
         .cholesky()
         .ok_or(HybridError::OutputMap { features: p, ridge })?
         .solve(&(&s * &rhs));
-    let theta = &s * theta_scaled; // p × outputs
-    let c = theta.rows(0, n).transpose();
-    let d = theta.rows(n, N_INPUTS).transpose();
-    Ok(Correction {
-        a: rows_of(&a),
-        b: rows_of(&b),
-        c: rows_of(&c),
-        d: rows_of(&d),
+    Ok(&s * theta_scaled)
+}
+
+/// Mean over P, Q, i_p, i_q of the NRMSE (% of rating) of the physics' outputs on `case` plus a
+/// current correction (Δi_d, Δi_q) in the pre-fault frame, combined as the runtime combines
+/// them (ΔS = v·conj(Δi)), against the recorded trace.
+fn corrected_nrmse(
+    case: &Case,
+    physics: &OutputSeries<f64>,
+    di_d: &dyn Fn(usize) -> f64,
+    di_q: &dyn Fn(usize) -> f64,
+) -> f64 {
+    let d = &case.data;
+    let n = d.len();
+    let pf = case.pre_fault().frame();
+    let (mut i_re, mut i_im, mut p, mut q) = (
+        Vec::with_capacity(n),
+        Vec::with_capacity(n),
+        Vec::with_capacity(n),
+        Vec::with_capacity(n),
+    );
+    for k in 0..n {
+        let (dr, di) = pf.to_network(di_d(k), di_q(k));
+        let (vr, vi) = (d.v_re[k], d.v_im[k]);
+        i_re.push(physics.i_re[k] + dr);
+        i_im.push(physics.i_im[k] + di);
+        p.push(physics.p[k] + vr * dr + vi * di);
+        q.push(physics.q[k] + vi * dr - vr * di);
+    }
+    let (ip_ref, iq_ref) = active_reactive(&d.v_re, &d.v_im, &d.i_re, &d.i_im);
+    let (ip, iq) = active_reactive(&d.v_re, &d.v_im, &i_re, &i_im);
+    let nrmse = |r: &[f64], m: &[f64]| {
+        let sq: f64 = r.iter().zip(m).map(|(a, b)| (a - b) * (a - b)).sum();
+        100.0 * (sq / n.max(1) as f64).sqrt()
+    };
+    (nrmse(&d.p, &p) + nrmse(&d.q, &q) + nrmse(&ip_ref, &ip) + nrmse(&iq_ref, &iq)) / 4.0
+}
+
+/// Leave-one-trace-out cross-validation of the correction (see [`CrossValidation`]) over the
+/// ridge candidates `ridges` and the output shrink factors [`SHRINK_CANDIDATES`]; the choice is
+/// the smallest mean NRMSE over the left-out traces (on a tie the smaller shrink, then the
+/// larger ridge: the more cautious correction).
+fn cross_validate(
+    training: &[&Case],
+    residuals: &[[Vec<f64>; 2]],
+    physics: &[OutputSeries<f64>],
+    config: &HybridConfig,
+    step_s: f64,
+    ridges: &[f64],
+) -> Result<CrossValidation, HybridError> {
+    let m = training.len();
+    let shrinks = SHRINK_CANDIDATES.len();
+    // per fold: the physics' NRMSE and, per ridge, per (shrink d, shrink q), the hybrid's
+    type Fold = (f64, Vec<Vec<f64>>);
+    let folds: Vec<Fold> = (0..m)
+        .into_par_iter()
+        .map(|out| {
+            let keep: Vec<usize> = (0..m).filter(|&i| i != out).collect();
+            let cases: Vec<&Case> = keep.iter().map(|&i| training[i]).collect();
+            let res: Vec<&[Vec<f64>; 2]> = keep.iter().map(|&i| &residuals[i]).collect();
+            let poles = correction_poles(&cases, &res, config, step_s)?.poles;
+            let left = training[out];
+            let mut features = free_run_features(&poles, &[left], &[&residuals[out]])?;
+            let (phi_left, _) = features.pop().expect("one trace in, one out");
+            let train = free_run_features(&poles, &cases, &res)?;
+            let train_refs: Vec<&Features> = train.iter().collect();
+            let zero = |_: usize| 0.0;
+            let reduced = corrected_nrmse(left, &physics[out], &zero, &zero);
+            let per_ridge = ridges
+                .iter()
+                .map(|&ridge| {
+                    let prediction = &phi_left * output_map(&train_refs, ridge)?;
+                    let mut scores = Vec::with_capacity(shrinks * shrinks);
+                    for sd in SHRINK_CANDIDATES {
+                        for sq in SHRINK_CANDIDATES {
+                            scores.push(corrected_nrmse(
+                                left,
+                                &physics[out],
+                                &|k| sd * prediction[(k, 0)],
+                                &|k| sq * prediction[(k, 1)],
+                            ));
+                        }
+                    }
+                    Ok(scores)
+                })
+                .collect::<Result<Vec<_>, HybridError>>()?;
+            Ok((reduced, per_ridge))
+        })
+        .collect::<Result<_, HybridError>>()?;
+    let mean = |f: &dyn Fn(&Fold) -> f64| folds.iter().map(f).sum::<f64>() / m as f64;
+    let reduced_percent = mean(&|f| f.0);
+    let full = (shrinks - 1) * shrinks + (shrinks - 1);
+    let mut rows = Vec::with_capacity(ridges.len());
+    let mut best: Option<(f64, usize, usize)> = None; // (score, ridge index, shrink index)
+    for (ri, &ridge) in ridges.iter().enumerate() {
+        let scores: Vec<f64> = (0..shrinks * shrinks)
+            .map(|si| mean(&|f| f.1[ri][si]))
+            .collect();
+        // shrink pairs in order of total shrink factor, so a tie keeps the smaller
+        let mut order: Vec<usize> = (0..shrinks * shrinks).collect();
+        order.sort_by(|&a, &b| {
+            let total = |i: usize| SHRINK_CANDIDATES[i / shrinks] + SHRINK_CANDIDATES[i % shrinks];
+            total(a).total_cmp(&total(b))
+        });
+        let si = order
+            .into_iter()
+            .min_by(|&a, &b| scores[a].total_cmp(&scores[b]))
+            .expect("shrink candidates");
+        rows.push(CvRow {
+            ridge,
+            fitted_percent: scores[full],
+            shrink: [
+                SHRINK_CANDIDATES[si / shrinks],
+                SHRINK_CANDIDATES[si % shrinks],
+            ],
+            shrunk_percent: scores[si],
+        });
+        if best.is_none_or(|(s, _, _)| scores[si] <= s) {
+            best = Some((scores[si], ri, si));
+        }
+    }
+    let (hybrid_percent, ri, si) = best.expect("at least one ridge candidate");
+    Ok(CrossValidation {
+        folds: m,
+        reduced_percent,
+        rows,
+        ridge: ridges[ri],
+        shrink: [
+            SHRINK_CANDIDATES[si / shrinks],
+            SHRINK_CANDIDATES[si % shrinks],
+        ],
+        hybrid_percent,
     })
 }
 

@@ -44,6 +44,9 @@ pub fn write_report_with(
             "some held-out cases are OUTSIDE the tolerance"
         }
     ));
+    if let Some(cv) = &outcome.cross_validation {
+        r.paragraph(&format!("Correction chosen by {}.", cv.summary()));
+    }
     r.heading("Compressed sensing").paragraph(&format!(
         "Residual set compressed with the orthonormal DCT-II keeping {:.1} % of the \
          coefficients per trace (ramp removed first); relative reconstruction error \

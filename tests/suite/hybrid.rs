@@ -65,26 +65,44 @@ fn outcome() -> &'static HybridOutcome {
 }
 
 #[test]
-fn hybrid_improves_on_the_reduced_model_and_meets_the_median_target() {
+fn hybrid_improves_on_the_reduced_model_and_its_cross_validation_is_consistent() {
     // the part of the acceptance of issue 4 (our own targets) that is met: on the held-out
-    // faults the hybrid beats the reduced model on average, and its median NRMSE of P and Q is
-    // ≤ 2 % of rating (measured: mean 3.44 % → 2.05 %, median P 1.42 %, Q 1.77 %; the same
-    // with the order-72 per-input correction and its order-24 minimal realisation)
+    // faults the hybrid beats the reduced model on average (measured: mean 3.44 % → 2.34 %,
+    // ratio 0.68; median P 1.49 %, Q 2.02 % — the median-2 % target is now just missed on Q,
+    // see the ignored acceptance test). The correction is chosen by leave-one-trace-out
+    // cross-validation (measured: physics alone 3.85 %, as fitted 2.93 %, chosen ridge 1e-3
+    // with Δi_d shrunk by 0.5: 2.80 %); what it chose can never be worse in cross-validation
+    // than the physics alone, because dropping the correction is one of its candidates
     let o = outcome();
     let (mean_reduced, mean_hybrid) = o.mean_nrmse();
-    let (_, p_hyb) = o.median_nrmse("p");
-    let (_, q_hyb) = o.median_nrmse("q");
     assert!(
         mean_hybrid < 0.8 * mean_reduced,
         "{mean_hybrid} vs {mean_reduced}"
     );
-    assert!(p_hyb <= 2.0 && q_hyb <= 2.0, "P {p_hyb} %, Q {q_hyb} %");
+    let cv = o.cross_validation.as_ref().expect("on by default");
+    assert_eq!(cv.folds, o.training.len());
+    assert_eq!(cv.rows.len(), understudy::hybrid::RIDGE_CANDIDATES.len());
+    assert!(
+        cv.hybrid_percent <= cv.reduced_percent,
+        "{} vs {}",
+        cv.hybrid_percent,
+        cv.reduced_percent
+    );
+    let best = cv
+        .rows
+        .iter()
+        .map(|r| r.shrunk_percent.min(r.fitted_percent))
+        .fold(f64::INFINITY, f64::min);
+    assert!(cv.hybrid_percent <= best, "{} vs {best}", cv.hybrid_percent);
 }
 
 #[test]
-#[ignore = "acceptance NOT fully met: the median target is (P 1.42 %, Q 1.77 %), but the mean \
-            held-out NRMSE drops only from 3.44 % (reduced) to 2.05 % (hybrid), ratio 0.60, \
-            not <= 0.5; run with --ignored to see the figures"]
+#[ignore = "acceptance NOT met: with the correction chosen by cross-validation the mean \
+            held-out NRMSE drops from 3.44 % (reduced) to 2.34 % (hybrid), ratio 0.68, not \
+            <= 0.5, and the median is P 1.49 %, Q 2.02 % (target 2 %); without the \
+            cross-validation it was 0.60 (P 1.42 %, Q 1.77 %) on this seed but 1.54 on seed 2 \
+            (the correction made faults it never saw worse); run with --ignored to see the \
+            figures"]
 fn hybrid_halves_the_reduced_error_on_held_out_faults() {
     let o = outcome();
     let (mean_reduced, mean_hybrid) = o.mean_nrmse();
@@ -98,6 +116,9 @@ fn hybrid_halves_the_reduced_error_on_held_out_faults() {
         o.moved_to_real_axis.len(),
         o.compression.relative_error
     );
+    if let Some(cv) = &o.cross_validation {
+        eprintln!("{}", cv.summary());
+    }
     eprintln!("mean NRMSE reduced {mean_reduced:.3} %, hybrid {mean_hybrid:.3} %");
     eprintln!("median NRMSE P: reduced {p_red:.3} %, hybrid {p_hyb:.3} %");
     eprintln!("median NRMSE Q: reduced {q_red:.3} %, hybrid {q_hyb:.3} %");
