@@ -519,8 +519,8 @@ impl CrossValidation {
             .iter()
             .map(|r| {
                 format!(
-                    "ridge {:e}: {:.3} % as fitted, {:.3} % with shrink ({}, {})",
-                    r.ridge, r.fitted_percent, r.shrink[0], r.shrink[1], r.shrunk_percent
+                    "ridge {:e}: {:.3} % as fitted, {:.3} % with (Δi_d, Δi_q) shrunk by ({}, {})",
+                    r.ridge, r.fitted_percent, r.shrunk_percent, r.shrink[0], r.shrink[1]
                 )
             })
             .collect();

@@ -94,6 +94,15 @@ fn hybrid_improves_on_the_reduced_model_and_its_cross_validation_is_consistent()
         .map(|r| r.shrunk_percent.min(r.fitted_percent))
         .fold(f64::INFINITY, f64::min);
     assert!(cv.hybrid_percent <= best, "{} vs {best}", cv.hybrid_percent);
+    // the summary (printed by `fit` and the report) puts each figure beside its own label
+    let summary = cv.summary();
+    for r in &cv.rows {
+        let row = format!(
+            "ridge {:e}: {:.3} % as fitted, {:.3} % with (Δi_d, Δi_q) shrunk by ({}, {})",
+            r.ridge, r.fitted_percent, r.shrunk_percent, r.shrink[0], r.shrink[1]
+        );
+        assert!(summary.contains(&row), "{row} not in {summary}");
+    }
 }
 
 #[test]
