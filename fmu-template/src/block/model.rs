@@ -1465,9 +1465,14 @@ impl<S: Scalar> BlockRun<S> {
         let mut sig = std::mem::take(&mut self.signals);
         set_inputs(&mut sig, input);
         self.evaluate(model, &mut sig);
-        let o = model.outputs;
-        let y = [sig[o[0]], sig[o[1]], sig[o[2]], sig[o[3]]];
         self.signals = sig;
+        self.finish_step(model)
+    }
+
+    /// With the signals of this sample evaluated: its outputs, then the state update and the
+    /// remaining substeps (the input held).
+    fn finish_step(&mut self, model: &BlockModel) -> [S; 4] {
+        let y = outputs_of(model, &self.signals);
         self.update(model);
         for _ in 1..self.substeps {
             let mut sig = std::mem::take(&mut self.signals);
@@ -1488,17 +1493,7 @@ impl<S: Scalar> BlockRun<S> {
     pub fn step_from_probe(&mut self, model: &BlockModel, probe: &mut Vec<S>) -> [S; 4] {
         assert_eq!(probe.len(), self.signals.len(), "probe from another model");
         std::mem::swap(&mut self.signals, probe);
-        let o = model.outputs;
-        let sig = &self.signals;
-        let y = [sig[o[0]], sig[o[1]], sig[o[2]], sig[o[3]]];
-        self.update(model);
-        for _ in 1..self.substeps {
-            let mut sig = std::mem::take(&mut self.signals);
-            self.evaluate(model, &mut sig);
-            self.signals = sig;
-            self.update(model);
-        }
-        y
+        self.finish_step(model)
     }
 
     /// The outputs (i_re, i_im, p, q) the next `step` would report for `input`, without
@@ -1509,9 +1504,13 @@ impl<S: Scalar> BlockRun<S> {
         scratch.extend_from_slice(&self.signals);
         set_inputs(scratch, input);
         self.evaluate(model, scratch);
-        let o = model.outputs;
-        [scratch[o[0]], scratch[o[1]], scratch[o[2]], scratch[o[3]]]
+        outputs_of(model, scratch)
     }
+}
+
+/// The model's outputs (i_re, i_im, p, q) among evaluated signals.
+fn outputs_of<S: Scalar>(model: &BlockModel, sig: &[S]) -> [S; 4] {
+    model.outputs.map(|k| sig[k])
 }
 
 /// The lag coefficient of every lag, washout and lead-lag block (0 for other blocks).
