@@ -31,12 +31,12 @@ pub struct HybridCoSim {
     running: Option<Live>,
     /// signals of the output probe, reused so that `outputs` allocates nothing
     probe: RefCell<Vec<f64>>,
-    /// what the probe and the outputs below were computed for, `None` when nothing is
-    /// valid: a host's get between two steps is answered once, and the following doStep
-    /// reuses the probe's signals instead of evaluating the same sample again
-    probed: Cell<Option<ProbeKey>>,
-    probed_outputs: Cell<Outputs>,
-    /// bumped by every change of the running state (initialise, do_step, restore_state)
+    /// what the probe was computed for and the outputs it gave: a host's get between two
+    /// steps is answered once, and the following doStep reuses the probe's signals instead of
+    /// evaluating the same sample again; valid only while its key's epoch is the present one
+    probed: Cell<Option<(ProbeKey, Outputs)>>,
+    /// bumped by every change of the running state (initialise, do_step, restore_state), which
+    /// is what makes an earlier probe stale
     epoch: u64,
 }
 
@@ -110,12 +110,6 @@ impl HybridCoSim {
             free: model.free_parameter_values(),
             probe: RefCell::new(Vec::with_capacity(model.signal_names().len())),
             probed: Cell::new(None),
-            probed_outputs: Cell::new(Outputs {
-                i_re: 0.0,
-                i_im: 0.0,
-                p: 0.0,
-                q: 0.0,
-            }),
             epoch: 0,
             model,
             internal_step_s,
@@ -126,6 +120,13 @@ impl HybridCoSim {
 
     pub fn correction_order(&self) -> usize {
         self.correction.order()
+    }
+
+    /// The outputs of the last probe when it was made for `key` (this state, these inputs).
+    fn probed_outputs(&self, key: &ProbeKey) -> Option<Outputs> {
+        self.probed
+            .get()
+            .and_then(|(k, outputs)| (k == *key).then_some(outputs))
     }
 }
 
@@ -181,7 +182,9 @@ impl CoSimModel for HybridCoSim {
                 expected: "a communication step > 0 s".into(),
             });
         }
-        let probed = self.probed.get() == Some(ProbeKey::new(self.epoch, inputs));
+        let probed = self
+            .probed_outputs(&ProbeKey::new(self.epoch, inputs))
+            .is_some();
         let running = self
             .running
             .as_mut()
@@ -201,7 +204,6 @@ impl CoSimModel for HybridCoSim {
         }
         std::mem::swap(&mut running.z, &mut running.z_trial);
         self.epoch += 1;
-        self.probed.set(None);
         let target = running.elapsed_s + h_s;
         // the block model steps at its internal step while a whole step fits before the
         // target (a relative slack absorbs rounding of sums of host steps); the first step
@@ -229,8 +231,8 @@ impl CoSimModel for HybridCoSim {
             .as_ref()
             .ok_or(CoSimError::NotInitialised { call: "outputs" })?;
         let key = ProbeKey::new(self.epoch, inputs);
-        if self.probed.get() == Some(key) {
-            return Ok(self.probed_outputs.get());
+        if let Some(outputs) = self.probed_outputs(&key) {
+            return Ok(outputs);
         }
         let [i_re, i_im, p, q] =
             running
@@ -249,8 +251,7 @@ impl CoSimModel for HybridCoSim {
             p: p + v_re * di_re + v_im * di_im,
             q: q + v_im * di_re - v_re * di_im,
         };
-        self.probed.set(Some(key));
-        self.probed_outputs.set(outputs);
+        self.probed.set(Some((key, outputs)));
         Ok(outputs)
     }
 
@@ -269,7 +270,6 @@ impl CoSimModel for HybridCoSim {
     fn restore_state(&mut self, state: &HybridState) -> Result<(), CoSimError> {
         let Some(r) = &state.running else {
             self.epoch += 1;
-            self.probed.set(None);
             self.running = None;
             return Ok(());
         };
@@ -285,7 +285,6 @@ impl CoSimModel for HybridCoSim {
             )));
         }
         self.epoch += 1;
-        self.probed.set(None);
         self.running = Some(Live {
             block,
             block_steps: r.block_steps,
