@@ -964,11 +964,13 @@ pub unsafe extern "C" fn fmi2GetReal(
     value: *mut fmi2Real,
 ) -> fmi2Status {
     entry(c, "fmi2GetReal", GETTABLE, |inner, _| {
-        get_reals(inner, vr, nvr, value).map(|()| fmi2OK)
+        get_reals(inner, vr, nvr, value, None).map(|()| fmi2OK)
     })
 }
 
-/// Read real variables (FMI 2.0 Real, FMI 3.0 Float64).
+/// Read real variables (FMI 2.0 Real, FMI 3.0 Float64); `time_vr` is the value reference of
+/// the independent variable where the standard has one (FMI 3.0), answered with the FMU's
+/// time. The outputs are evaluated at most once per call however many are asked for.
 ///
 /// # Safety
 /// `vr` and `value` hold `nvr` elements.
@@ -977,12 +979,14 @@ pub(crate) unsafe fn get_reals(
     vr: *const fmi2ValueReference,
     nvr: usize,
     value: *mut f64,
+    time_vr: Option<fmi2ValueReference>,
 ) -> Result<(), String> {
     arrays_ok(nvr, vr, value)?;
     let mut outputs = None;
     for k in 0..nvr {
         let r = *vr.add(k);
         let v = match r {
+            r if Some(r) == time_vr => inner.time,
             vr::V_RE => inner.inputs.v_re,
             vr::V_IM => inner.inputs.v_im,
             vr::F_GRID => inner.inputs.f_grid,

@@ -521,22 +521,14 @@ pub unsafe extern "C" fn fmi3GetFloat64(
     entry(instance, "fmi3GetFloat64", GETTABLE, |inner, _| {
         arrays_ok(nValueReferences, valueReferences, values)?;
         scalar_count(nValueReferences, nValues)?;
-        if nValueReferences == 0 {
-            return Ok(fmi3OK);
-        }
-        let refs = std::slice::from_raw_parts(valueReferences, nValueReferences);
-        if !refs.contains(&TIME_VR) {
-            // one call for all: the outputs are evaluated once however many are asked for
-            return get_reals(inner, valueReferences, nValueReferences, values).map(|()| fmi3OK);
-        }
-        for (k, r) in refs.iter().enumerate() {
-            if *r == TIME_VR {
-                *values.add(k) = inner.time;
-            } else {
-                get_reals(inner, r, 1, values.add(k))?;
-            }
-        }
-        Ok(fmi3OK)
+        get_reals(
+            inner,
+            valueReferences,
+            nValueReferences,
+            values,
+            Some(TIME_VR),
+        )
+        .map(|()| fmi3OK)
     })
 }
 

@@ -478,6 +478,28 @@ fn fmi3_bad_calls_return_errors_and_log_a_line_naming_the_call() {
 }
 
 #[test]
+fn fmi3_get_float64_answers_time_and_outputs_in_one_call() {
+    // FMI 3.0 standard (from memory): the independent variable `time` has a value reference
+    // and is read with fmi3GetFloat64 like any other Float64, here mixed with outputs
+    let e = export3(&test_model());
+    let api = Api3::load(&e);
+    let u = Instance3::open(&api, &e);
+    u.initialise(C64::new(1.0, 0.05));
+    let last = *u.run(0.0, 1e-3, 30, dip(0.3)).last().unwrap();
+    let refs = [P, understudy::runtime::fmi3::TIME_VR, Q, V_RE, I_RE];
+    let mut values = [f64::NAN; 5];
+    assert_eq!(
+        unsafe { (api.get_f64)(u.i, refs.as_ptr(), 5, values.as_mut_ptr(), 5) },
+        OK
+    );
+    assert!((values[1] - 0.03).abs() < 1e-12, "time {}", values[1]);
+    assert_eq!(values[0].to_bits(), last[2].to_bits());
+    assert_eq!(values[2].to_bits(), last[3].to_bits());
+    assert_eq!(values[4].to_bits(), last[0].to_bits());
+    assert!(values[3].is_finite());
+}
+
+#[test]
 fn fmi3_state_restores_a_trajectory_and_survives_serialisation() {
     let e = export3(&test_model());
     let api = Api3::load(&e);
