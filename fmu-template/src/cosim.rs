@@ -115,6 +115,20 @@ pub struct Outputs {
     pub q: f64,
 }
 
+impl Outputs {
+    /// These outputs with a current Δi (network frame) added at terminal voltage v: the current
+    /// moves by Δi and P, Q by ΔS = v·conj(Δi). How the hybrid adds its correction, at run time
+    /// and when the fit scores a correction.
+    pub fn plus_current(self, v_re: f64, v_im: f64, di_re: f64, di_im: f64) -> Outputs {
+        Outputs {
+            i_re: self.i_re + di_re,
+            i_im: self.i_im + di_im,
+            p: self.p + v_re * di_re + v_im * di_im,
+            q: self.q + v_im * di_re - v_re * di_im,
+        }
+    }
+}
+
 /// A model an FMU (or any co-simulation master) can step.
 ///
 /// Contract: `initialise` puts the model at a steady state for the inputs and setpoints;

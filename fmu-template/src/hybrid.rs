@@ -243,14 +243,8 @@ impl CoSimModel for HybridCoSim {
             .input(inputs.v_re, inputs.v_im, inputs.f_grid);
         let (di_d, di_q) = self.correction.output(&running.z, &u);
         let (di_re, di_im) = running.pre_fault.to_network(di_d, di_q);
-        // ΔS = v·conj(Δi): P and Q move with the corrected current
-        let (v_re, v_im) = (inputs.v_re, inputs.v_im);
-        let outputs = Outputs {
-            i_re: i_re + di_re,
-            i_im: i_im + di_im,
-            p: p + v_re * di_re + v_im * di_im,
-            q: q + v_im * di_re - v_re * di_im,
-        };
+        let outputs =
+            Outputs { i_re, i_im, p, q }.plus_current(inputs.v_re, inputs.v_im, di_re, di_im);
         self.probed.set(Some((key, outputs)));
         Ok(outputs)
     }

@@ -39,8 +39,8 @@ use understudy_runtime::correction::{
     rows_of, Correction, CorrectionStepper, PreFault, CORRECTION_OUTPUTS, N_INPUTS,
 };
 use understudy_runtime::cosim::{
-    Bases, CoSimError, CoSimModel, Envelope, Inputs, ModelFile, ModelKind, Setpoints, StartValues,
-    HYBRID_MODEL_FORMAT,
+    Bases, CoSimError, CoSimModel, Envelope, Inputs, ModelFile, ModelKind, Outputs, Setpoints,
+    StartValues, HYBRID_MODEL_FORMAT,
 };
 use understudy_runtime::hybrid::OperatingRange;
 
@@ -1088,37 +1088,40 @@ fn output_map(per_trace: &[&Features], ridge: f64) -> Result<DMatrix<f64>, Hybri
 
 /// Mean over P, Q, i_p, i_q of the NRMSE (% of rating) of the physics' outputs on `case` plus a
 /// current correction (Δi_d, Δi_q) in the pre-fault frame, combined as the runtime combines
-/// them (ΔS = v·conj(Δi)), against the recorded trace.
+/// them ([`Outputs::plus_current`]), against the recorded trace: the validation's own
+/// comparison ([`comparisons`]).
 fn corrected_nrmse(
     case: &Case,
     physics: &OutputSeries<f64>,
     di_d: &dyn Fn(usize) -> f64,
     di_q: &dyn Fn(usize) -> f64,
-) -> f64 {
+    windows: &WindowConfig,
+) -> Result<f64, HybridError> {
     let d = &case.data;
     let n = d.len();
     let pf = case.pre_fault().frame();
-    let (mut i_re, mut i_im, mut p, mut q) = (
-        Vec::with_capacity(n),
-        Vec::with_capacity(n),
-        Vec::with_capacity(n),
-        Vec::with_capacity(n),
-    );
+    let mut corrected = OutputSeries {
+        i_re: Vec::with_capacity(n),
+        i_im: Vec::with_capacity(n),
+        p: Vec::with_capacity(n),
+        q: Vec::with_capacity(n),
+    };
     for k in 0..n {
         let (dr, di) = pf.to_network(di_d(k), di_q(k));
-        let (vr, vi) = (d.v_re[k], d.v_im[k]);
-        i_re.push(physics.i_re[k] + dr);
-        i_im.push(physics.i_im[k] + di);
-        p.push(physics.p[k] + vr * dr + vi * di);
-        q.push(physics.q[k] + vi * dr - vr * di);
+        let o = Outputs {
+            i_re: physics.i_re[k],
+            i_im: physics.i_im[k],
+            p: physics.p[k],
+            q: physics.q[k],
+        }
+        .plus_current(d.v_re[k], d.v_im[k], dr, di);
+        corrected.i_re.push(o.i_re);
+        corrected.i_im.push(o.i_im);
+        corrected.p.push(o.p);
+        corrected.q.push(o.q);
     }
-    let (ip_ref, iq_ref) = active_reactive(&d.v_re, &d.v_im, &d.i_re, &d.i_im);
-    let (ip, iq) = active_reactive(&d.v_re, &d.v_im, &i_re, &i_im);
-    let nrmse = |r: &[f64], m: &[f64]| {
-        let sq: f64 = r.iter().zip(m).map(|(a, b)| (a - b) * (a - b)).sum();
-        100.0 * (sq / n.max(1) as f64).sqrt()
-    };
-    (nrmse(&d.p, &p) + nrmse(&d.q, &q) + nrmse(&ip_ref, &ip) + nrmse(&iq_ref, &iq)) / 4.0
+    let signals = comparisons(case, &corrected, windows)?;
+    Ok(signals.iter().map(|c| c.nrmse_percent).sum::<f64>() / signals.len() as f64)
 }
 
 /// Leave-one-trace-out cross-validation of the correction (see [`CrossValidation`]) over the
@@ -1150,7 +1153,7 @@ fn cross_validate(
             let train = free_run_features(&poles, &cases, &res)?;
             let train_refs: Vec<&Features> = train.iter().collect();
             let zero = |_: usize| 0.0;
-            let reduced = corrected_nrmse(left, &physics[out], &zero, &zero);
+            let reduced = corrected_nrmse(left, &physics[out], &zero, &zero, &config.windows)?;
             let per_ridge = ridges
                 .iter()
                 .map(|&ridge| {
@@ -1163,7 +1166,8 @@ fn cross_validate(
                                 &physics[out],
                                 &|k| sd * prediction[(k, 0)],
                                 &|k| sq * prediction[(k, 1)],
-                            ));
+                                &config.windows,
+                            )?);
                         }
                     }
                     Ok(scores)
