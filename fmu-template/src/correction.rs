@@ -12,12 +12,23 @@
 //! its steady state sees u = 0 and keeps z = 0): the terminal voltage in the frame of the
 //! pre-fault voltage angle θ₀ minus its pre-fault value, (v_d − |v₀|, v_q), the grid frequency
 //! minus its pre-fault value, the voltage-magnitude deviation scaled by the pre-fault active
-//! and reactive power (so one linear system serves different operating points), and the dip
-//! depth below 0.9 pu, max(0, 0.9 − |v|), minus its pre-fault value. Why the dip depth: a
-//! converter changes its behaviour when the voltage falls below its ride-through threshold
-//! (current limits, reactive-current injection; 0.9 pu is the usual threshold, common practice in
-//! grid codes), which a linear function of the voltage cannot express; given as an input
-//! feature computed from the terminal voltage, the correction stays a linear system.
+//! and reactive power (so one linear system serves different operating points), the dip
+//! depth below 0.9 pu, max(0, 0.9 − |v|), minus its pre-fault value, and the physics' own
+//! current in the same frame minus its pre-fault value (i_d − p₀/|v₀|, i_q + q₀/|v₀|). Why the
+//! dip depth: a converter changes its behaviour when the voltage falls below its ride-through
+//! threshold (current limits, reactive-current injection; 0.9 pu is the usual threshold,
+//! common practice in grid codes), which a linear function of the voltage cannot express;
+//! given as an input feature computed from the terminal voltage, the correction stays a linear
+//! system. Why the physics' current: the reduced physics already carries the unit's
+//! nonlinearities (limits, ride-through logic, the PLL), so what it misses is often a filtered
+//! or rescaled version of what it does (e.g. an active current that recovers more slowly in the
+//! detailed unit); the physics does not see the correction, so there is no loop.
+//!
+//! Each input is held inside the range seen in training before it reaches the correction
+//! (`input_range`): a linear map fitted on some faults is not extrapolated to voltages or
+//! currents it never saw. The output map may have a second part, C_dip and D_dip, added while
+//! the terminal voltage is below 0.9 pu ([`in_dip`]): the same states read differently during a
+//! dip than outside one (a switched output map; the dynamics stay linear and stable).
 //!
 //! Output Δy: the correction of the injected current (Δi_d, Δi_q) in the same pre-fault frame.
 //! Why the current and why that frame: the frame is fixed, so the correction does not depend on
@@ -30,14 +41,19 @@ use nalgebra::DMatrix;
 use serde::{Deserialize, Serialize};
 
 /// The inputs of the correction, in order (see the module doc).
-pub const CORRECTION_INPUTS: [&str; 6] = [
+pub const CORRECTION_INPUTS: [&str; 8] = [
     "v_d - |v0|",
     "v_q",
     "f_grid - f0",
     "p0 * (|v| - |v0|)",
     "q0 * (|v| - |v0|)",
     "max(0, 0.9 - |v|) - max(0, 0.9 - |v0|)",
+    "physics i_d - p0/|v0|",
+    "physics i_q + q0/|v0|",
 ];
+
+/// The inputs that carry the physics' current (the rest are terminal quantities).
+pub const PHYSICS_INPUTS: std::ops::Range<usize> = 6..8;
 
 /// Number of correction inputs.
 pub const N_INPUTS: usize = CORRECTION_INPUTS.len();
@@ -72,8 +88,8 @@ impl PreFault {
 
     /// The correction's input vector for terminal voltage (v_re, v_im) and frequency f_grid
     /// (see [`PreFaultFrame::input`], THE one definition).
-    pub fn input(&self, v_re: f64, v_im: f64, f_grid: f64) -> [f64; N_INPUTS] {
-        self.frame().input(v_re, v_im, f_grid)
+    pub fn input(&self, v_re: f64, v_im: f64, f_grid: f64, physics: (f64, f64)) -> [f64; N_INPUTS] {
+        self.frame().input(v_re, v_im, f_grid, physics)
     }
 
     /// A current correction (Δi_d, Δi_q) in the pre-fault frame, rotated to the network frame.
@@ -98,7 +114,7 @@ pub struct PreFaultFrame {
 impl PreFaultFrame {
     /// The correction's input vector for terminal voltage (v_re, v_im) and frequency f_grid.
     /// THE one definition, used by the tool when fitting and by the runtime when stepping.
-    pub fn input(&self, v_re: f64, v_im: f64, f_grid: f64) -> [f64; N_INPUTS] {
+    pub fn input(&self, v_re: f64, v_im: f64, f_grid: f64, physics: (f64, f64)) -> [f64; N_INPUTS] {
         let (s, c) = (self.sin, self.cos);
         let pf = &self.pre_fault;
         // v·e^{−jθ₀}
@@ -116,6 +132,8 @@ impl PreFaultFrame {
             pf.p0 * du,
             pf.q0 * du,
             dip(u) - dip(pf.u0),
+            physics.0 * c + physics.1 * s - pf.p0 / pf.u0,
+            -physics.0 * s + physics.1 * c + pf.q0 / pf.u0,
         ]
     }
 
@@ -145,7 +163,30 @@ pub struct Correction {
     /// D: 2 × inputs (direct feedthrough); absent (empty) means zero.
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub d: Vec<Vec<f64>>,
+    /// C_dip: 2 × order, added to C while the terminal voltage is below
+    /// [`DIP_THRESHOLD_PU`] (see [`in_dip`]); absent (empty) means zero.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub c_dip: Vec<Vec<f64>>,
+    /// D_dip: 2 × inputs, added to D in a dip likewise; absent (empty) means zero.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub d_dip: Vec<Vec<f64>>,
+    /// Per input, the [min, max] seen in training: inputs are held inside it before they
+    /// reach the correction, so it never extrapolates its linear map beyond its data;
+    /// absent (empty) means unbounded.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub input_range: Vec<[f64; 2]>,
 }
+
+/// Whether the terminal voltage (v_re, v_im) is in a dip: |v| below [`DIP_THRESHOLD_PU`], where
+/// the output map C_dip, D_dip is added to C, D.
+pub fn in_dip(v_re: f64, v_im: f64) -> bool {
+    v_re * v_re + v_im * v_im < DIP_THRESHOLD_PU * DIP_THRESHOLD_PU
+}
+
+/// Inputs of a correction written before the physics' current became an input (the first
+/// six of [`CORRECTION_INPUTS`]); its B and D are read with zero columns for the rest, which
+/// is the same model.
+pub const LEGACY_INPUTS: usize = 6;
 
 /// The checked (A, B, C, D) of a correction.
 pub type Matrices = (DMatrix<f64>, DMatrix<f64>, DMatrix<f64>, DMatrix<f64>);
@@ -199,6 +240,9 @@ impl Correction {
             b: Vec::new(),
             c: vec![Vec::new(), Vec::new()],
             d: Vec::new(),
+            c_dip: Vec::new(),
+            d_dip: Vec::new(),
+            input_range: Vec::new(),
         }
     }
 
@@ -206,22 +250,49 @@ impl Correction {
         self.a.len()
     }
 
-    /// The checked matrices (A, B, C, D); an empty D is zero.
+    /// The checked matrices (A, B, C, D); an empty D is zero. A B or D of
+    /// [`LEGACY_INPUTS`] columns gets zero columns for the inputs added since.
     pub fn matrices(&self) -> Result<Matrices, CorrectionError> {
         let n = self.order();
-        let (outputs, inputs) = (CORRECTION_OUTPUTS.len(), N_INPUTS);
-        let d = if self.d.is_empty() {
-            DMatrix::zeros(outputs, inputs)
-        } else {
-            to_matrix("d", &self.d, outputs, inputs)?
-        };
+        let outputs = CORRECTION_OUTPUTS.len();
         Ok((
             to_matrix("a", &self.a, n, n)?,
-            to_matrix("b", &self.b, n, inputs)?,
+            input_matrix("b", &self.b, n)?,
             to_matrix("c", &self.c, outputs, n)?,
-            d,
+            input_matrix("d", &self.d, outputs)?,
         ))
     }
+
+    /// The checked (C_dip, D_dip), zero when absent.
+    pub fn dip_matrices(&self) -> Result<(DMatrix<f64>, DMatrix<f64>), CorrectionError> {
+        let outputs = CORRECTION_OUTPUTS.len();
+        let c = if self.c_dip.is_empty() {
+            DMatrix::zeros(outputs, self.order())
+        } else {
+            to_matrix("c_dip", &self.c_dip, outputs, self.order())?
+        };
+        Ok((c, input_matrix("d_dip", &self.d_dip, outputs)?))
+    }
+}
+
+/// An `r` × [`N_INPUTS`] matrix from its rows: empty means zero (not for B), rows of [`LEGACY_INPUTS`]
+/// entries get zero columns for the inputs added since.
+fn input_matrix(
+    name: &'static str,
+    rows: &[Vec<f64>],
+    r: usize,
+) -> Result<DMatrix<f64>, CorrectionError> {
+    // only D and D_dip may be left out (B is read with `r` = order, where empty means order 0)
+    if rows.is_empty() && (name != "b" || r == 0) {
+        return Ok(DMatrix::zeros(r, N_INPUTS));
+    }
+    if rows.len() == r && r > 0 && rows.iter().all(|row| row.len() == LEGACY_INPUTS) {
+        let m = to_matrix(name, rows, r, LEGACY_INPUTS)?;
+        let mut padded = DMatrix::zeros(r, N_INPUTS);
+        padded.columns_mut(0, LEGACY_INPUTS).copy_from(&m);
+        return Ok(padded);
+    }
+    to_matrix(name, rows, r, N_INPUTS)
 }
 
 /// Exact zero-order-hold discretisation of (A, B) over h: Φ = e^{Ah}, Γ = ∫₀ʰ e^{As} ds · B,
@@ -292,9 +363,13 @@ pub struct CorrectionStepper {
     /// C (2 × order) and D (2 × inputs), row-major
     c: Vec<f64>,
     d: Vec<f64>,
+    /// C_dip and D_dip, row-major; empty when the correction has none
+    c_dip: Vec<f64>,
+    d_dip: Vec<f64>,
     cache: Option<Discrete>,
     /// scratch for the next state
     next: Vec<f64>,
+    range: Option<[[f64; 2]; N_INPUTS]>,
 }
 
 /// Φ(h) and Γ(h) of one step size, stored for a cheap step: Φ without its exact zeros (a
@@ -406,7 +481,39 @@ impl CorrectionStepper {
                 .flat_map(|i| m.row(i).iter().copied().collect::<Vec<_>>())
                 .collect()
         };
+        let range = match correction.input_range.len() {
+            0 => None,
+            N_INPUTS => Some(std::array::from_fn(|j| correction.input_range[j])),
+            n => {
+                return Err(CorrectionError {
+                    matrix: "input_range",
+                    message: format!("expected {N_INPUTS} [min, max] pairs, found {n}"),
+                })
+            }
+        };
+        if let Some(j) = correction
+            .input_range
+            .iter()
+            .position(|[lo, hi]| !(lo.is_finite() && hi.is_finite() && lo <= hi))
+        {
+            return Err(CorrectionError {
+                matrix: "input_range",
+                message: format!(
+                    "pair {j} ({}) is {:?}: expected finite min <= max",
+                    CORRECTION_INPUTS[j], correction.input_range[j]
+                ),
+            });
+        }
+        let (c_dip, d_dip) = if correction.c_dip.is_empty() && correction.d_dip.is_empty() {
+            (Vec::new(), Vec::new())
+        } else {
+            let (c_dip, d_dip) = correction.dip_matrices()?;
+            (row_major(&c_dip), row_major(&d_dip))
+        };
         Ok(Self {
+            range,
+            c_dip,
+            d_dip,
             next: vec![0.0; a.nrows()],
             c: row_major(&c),
             d: row_major(&d),
@@ -418,6 +525,16 @@ impl CorrectionStepper {
 
     pub fn order(&self) -> usize {
         self.a.nrows()
+    }
+
+    /// `u` held inside the training range of each input (unchanged when there is none).
+    pub fn bounded(&self, mut u: [f64; N_INPUTS]) -> [f64; N_INPUTS] {
+        if let Some(r) = &self.range {
+            for (x, [lo, hi]) in u.iter_mut().zip(r) {
+                *x = x.clamp(*lo, *hi);
+            }
+        }
+        u
     }
 
     /// Entries of Φ stepped per step at the cached step size (order² for a dense A, about
@@ -493,14 +610,20 @@ impl CorrectionStepper {
         }
     }
 
-    /// Δy = C z + D u: (Δi_d, Δi_q) in the pre-fault frame.
-    pub fn output(&self, z: &[f64], u: &[f64; N_INPUTS]) -> (f64, f64) {
+    /// Δy = C z + D u, plus C_dip z + D_dip u when `in_dip` (see [`in_dip`]): (Δi_d, Δi_q) in
+    /// the pre-fault frame.
+    pub fn output(&self, z: &[f64], u: &[f64; N_INPUTS], in_dip: bool) -> (f64, f64) {
         let n = self.order();
         assert_eq!(z.len(), n, "correction state length");
-        let row = |k: usize| {
-            dot(&self.d[k * N_INPUTS..(k + 1) * N_INPUTS], u) + dot(&self.c[k * n..(k + 1) * n], z)
+        let row = |c: &[f64], d: &[f64], k: usize| {
+            dot(&d[k * N_INPUTS..(k + 1) * N_INPUTS], u) + dot(&c[k * n..(k + 1) * n], z)
         };
-        (row(0), row(1))
+        let (mut d, mut q) = (row(&self.c, &self.d, 0), row(&self.c, &self.d, 1));
+        if in_dip && !self.c_dip.is_empty() {
+            d += row(&self.c_dip, &self.d_dip, 0);
+            q += row(&self.c_dip, &self.d_dip, 1);
+        }
+        (d, q)
     }
 }
 
@@ -543,31 +666,120 @@ mod tests {
         let (d, q) = pf.from_network(0.3, -0.2);
         let (re, im) = pf.to_network(d, q);
         assert!((re - 0.3).abs() < 1e-15 && (im + 0.2).abs() < 1e-15);
-        // at the pre-fault voltage every input is zero
+        // at the pre-fault voltage and the pre-fault current i = (p0 − j·q0)·e^{jθ₀}/|v₀|
+        // (from S = v·conj(i)) every input is zero
         let v = (1.02 * 0.6f64.cos(), 1.02 * 0.6f64.sin());
-        assert!(pf.input(v.0, v.1, 1.0).iter().all(|x| x.abs() < 1e-15));
+        let (s, c) = 0.6f64.sin_cos();
+        let i0 = ((0.7 * c + 0.1 * s) / 1.02, (0.7 * s - 0.1 * c) / 1.02);
+        let u = pf.input(v.0, v.1, 1.0, i0);
+        assert!(u.iter().all(|x| x.abs() < 1e-15), "{u:?}");
         // the dip depth below 0.9 pu at |v| = 0.5: 0.4 (hand calculation)
-        let dip = pf.input(0.5 * 0.6f64.cos(), 0.5 * 0.6f64.sin(), 1.0)[5];
+        let dip = pf.input(0.5 * c, 0.5 * s, 1.0, i0)[5];
         assert!((dip - 0.4).abs() < 1e-15, "{dip}");
+        // 0.1 pu more active current than before the disturbance: +0.1 on the physics' i_d
+        let more = pf.input(v.0, v.1, 1.0, (i0.0 + 0.1 * c, i0.1 + 0.1 * s));
+        assert!(
+            (more[6] - 0.1).abs() < 1e-15 && more[7].abs() < 1e-15,
+            "{more:?}"
+        );
     }
 
     #[test]
     fn output_adds_the_feedthrough_and_an_empty_d_is_zero() {
         let mut corr = Correction {
             a: vec![vec![-10.0]],
-            b: vec![vec![10.0, 0.0, 0.0, 0.0, 0.0, 0.0]],
+            b: vec![vec![10.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0]],
             c: vec![vec![1.0], vec![2.0]],
             d: Vec::new(),
+            c_dip: Vec::new(),
+            d_dip: Vec::new(),
+            input_range: Vec::new(),
         };
-        let u = [0.5, 0.0, 0.0, 0.0, 0.0, 1.0];
+        let u = [0.5, 0.0, 0.0, 0.0, 0.0, 1.0, 0.0, 0.0];
         let s = CorrectionStepper::new(&corr).unwrap();
-        assert_eq!(s.output(&[0.25], &u), (0.25, 0.5));
-        corr.d = vec![vec![0.0; 6], vec![0.0, 0.0, 0.0, 0.0, 0.0, 3.0]];
+        assert_eq!(s.output(&[0.25], &u, false), (0.25, 0.5));
+        corr.d = vec![vec![0.0; 8], vec![0.0, 0.0, 0.0, 0.0, 0.0, 3.0, 0.0, 0.0]];
         let s = CorrectionStepper::new(&corr).unwrap();
-        assert_eq!(s.output(&[0.25], &u), (0.25, 3.5));
+        assert_eq!(s.output(&[0.25], &u, false), (0.25, 3.5));
         // a D of the wrong shape names the matrix
         corr.d = vec![vec![0.0; 5], vec![0.0; 5]];
         let e = CorrectionStepper::new(&corr).unwrap_err();
         assert_eq!(e.matrix, "d");
+    }
+
+    #[test]
+    fn the_dip_map_adds_only_in_a_dip() {
+        let corr = Correction {
+            a: vec![vec![-10.0]],
+            b: vec![vec![10.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0]],
+            c: vec![vec![1.0], vec![2.0]],
+            d: Vec::new(),
+            c_dip: vec![vec![4.0], vec![0.0]],
+            d_dip: vec![vec![0.0; 8], vec![0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 2.0]],
+            input_range: Vec::new(),
+        };
+        let u = [0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.5];
+        let s = CorrectionStepper::new(&corr).unwrap();
+        assert_eq!(s.output(&[0.25], &u, false), (0.25, 0.5));
+        // C z + C_dip z = (1 + 4)·0.25; D_dip u = 2·0.5 (hand calculation)
+        assert_eq!(s.output(&[0.25], &u, true), (1.25, 1.5));
+        // the threshold: |v| = 0.9 pu is not a dip, just below it is
+        assert!(!in_dip(0.9, 0.0) && in_dip(0.0, 0.899_999) && !in_dip(0.6, 0.8));
+    }
+
+    #[test]
+    #[allow(clippy::float_cmp)] // zero columns and the outputs below are exact
+    fn a_correction_of_six_inputs_reads_as_the_same_model() {
+        // written before the physics' current was an input: B and D of six columns are read
+        // with zero columns for inputs 7 and 8, so the physics' current changes nothing
+        let corr = Correction {
+            a: vec![vec![-10.0]],
+            b: vec![vec![10.0, 0.0, 0.0, 0.0, 0.0, 2.0]],
+            c: vec![vec![1.0], vec![2.0]],
+            d: vec![vec![0.0, 0.0, 0.0, 0.0, 0.0, 3.0], vec![0.0; 6]],
+            c_dip: Vec::new(),
+            d_dip: Vec::new(),
+            input_range: Vec::new(),
+        };
+        let (_, b, _, d) = corr.matrices().unwrap();
+        assert_eq!((b.ncols(), d.ncols()), (N_INPUTS, N_INPUTS));
+        assert_eq!(
+            b.columns(6, 2).abs().sum() + d.columns(6, 2).abs().sum(),
+            0.0
+        );
+        let mut s = CorrectionStepper::new(&corr).unwrap();
+        let mut z = [0.0];
+        let u = [0.0, 0.0, 0.0, 0.0, 0.0, 1.0, 7.0, -7.0];
+        s.step(&mut z, &u, 1e-3);
+        // exact ZOH of dz/dt = −10 z + 2 over 1 ms: z = 0.2·(1 − e^{−0.01})
+        let expected = 0.2 * -(-0.01f64).exp_m1();
+        assert!(
+            (z[0] - expected).abs() < 1e-15 * expected,
+            "{} vs {expected}",
+            z[0]
+        );
+        assert_eq!(s.output(&z, &u, true), (z[0] + 3.0, 2.0 * z[0]));
+    }
+
+    #[test]
+    #[allow(clippy::float_cmp)] // clamping is exact
+    fn inputs_are_held_inside_the_training_range() {
+        let mut corr = Correction {
+            a: vec![vec![-10.0]],
+            b: vec![vec![10.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0]],
+            c: vec![vec![1.0], vec![0.0]],
+            d: vec![vec![1.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0, 0.0], vec![0.0; 8]],
+            c_dip: Vec::new(),
+            d_dip: Vec::new(),
+            input_range: vec![[-0.5, 0.2]; 8],
+        };
+        let s = CorrectionStepper::new(&corr).unwrap();
+        let u = s.bounded([0.7, -0.9, 0.1, 0.0, 0.0, 0.0, 0.0, 0.0]);
+        assert_eq!(u, [0.2, -0.5, 0.1, 0.0, 0.0, 0.0, 0.0, 0.0]);
+        // a range with min > max is refused, naming the input
+        corr.input_range[2] = [0.3, 0.1];
+        let e = CorrectionStepper::new(&corr).unwrap_err();
+        assert_eq!(e.matrix, "input_range");
+        assert!(e.message.contains("f_grid - f0"), "{}", e.message);
     }
 }

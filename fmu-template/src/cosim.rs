@@ -24,12 +24,17 @@ use thiserror::Error;
 pub const MODEL_FORMAT: &str = "understudy-model/1";
 
 /// The format of files that hold a hybrid surrogate (a newer runtime than version 1 is needed
-/// for them, so they say so); this runtime reads both. Files of kinds that existed in version 1
-/// are still written as version 1.
-pub const HYBRID_MODEL_FORMAT: &str = "understudy-model/2";
+/// for them, so they say so); this runtime reads all three. Files of kinds that existed in
+/// version 1 are still written as version 1. Version 3: the correction may take the physics'
+/// current as an input, have a dip map and bound its inputs (see [`crate::correction`]).
+pub const HYBRID_MODEL_FORMAT: &str = "understudy-model/3";
+
+/// Hybrid files written before version 3 (a correction of six inputs, which this runtime reads
+/// as the same model: see [`crate::correction::LEGACY_INPUTS`]).
+pub const HYBRID_MODEL_FORMAT_2: &str = "understudy-model/2";
 
 fn known_format(format: &str) -> bool {
-    format == MODEL_FORMAT || format == HYBRID_MODEL_FORMAT
+    format == MODEL_FORMAT || format == HYBRID_MODEL_FORMAT || format == HYBRID_MODEL_FORMAT_2
 }
 
 /// Failures of a co-simulated model: bad files, bad inputs, no steady state, failed steps.
@@ -37,7 +42,7 @@ fn known_format(format: &str) -> bool {
 pub enum CoSimError {
     #[error("model file is not valid JSON of format `{MODEL_FORMAT}`: {0}")]
     ModelFile(String),
-    #[error("model file format `{found}` is not supported: expected `{MODEL_FORMAT}` or `{HYBRID_MODEL_FORMAT}`")]
+    #[error("model file format `{found}` is not supported: expected `{MODEL_FORMAT}`, `{HYBRID_MODEL_FORMAT_2}` or `{HYBRID_MODEL_FORMAT}`")]
     Format { found: String },
     #[error("`{field}` = {value} is invalid: expected {expected}")]
     BadValue {
@@ -379,7 +384,7 @@ pub enum ModelKind {
         params: FullConverterParams,
         integration: Method,
     },
-    /// The hybrid surrogate: reduced block-model physics plus a linear correction (format 2).
+    /// The hybrid surrogate: reduced block-model physics plus a linear correction (format 2 or 3).
     Hybrid {
         /// The reduced template with its fitted parameter values.
         template: crate::block::Template,
@@ -472,7 +477,10 @@ impl ModelFile {
                 found: self.format.clone(),
             });
         }
-        if matches!(self.model, ModelKind::Hybrid { .. }) && self.format != needed {
+        if matches!(self.model, ModelKind::Hybrid { .. })
+            && self.format != needed
+            && self.format != HYBRID_MODEL_FORMAT_2
+        {
             return Err(CoSimError::ModelFile(format!(
                 "a hybrid model needs format `{needed}`, found `{}`",
                 self.format

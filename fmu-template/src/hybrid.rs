@@ -3,10 +3,11 @@
 //! correction (C z + D u, u from the present inputs) is rotated to the network frame and P, Q follow from S = v·conj(i).
 //!
 //! The block model runs at its own internal step (`internal_step_s`, the step it was fitted at)
-//! with the host's input held; the correction is stepped exactly over the host's step.
+//! with the host's input held; the correction is stepped exactly over the host's step, its
+//! inputs (the terminal voltage and the physics' current at the start of the step) held.
 
 use crate::block::{BlockModel, BlockRun, InitialOutputs, Sample, SimulatorSnapshot, Template};
-use crate::correction::{Correction, CorrectionStepper, PreFault, PreFaultFrame};
+use crate::correction::{in_dip, Correction, CorrectionStepper, PreFault, PreFaultFrame};
 use crate::cosim::{CoSimError, CoSimModel, Inputs, Outputs, Setpoints};
 use serde::{Deserialize, Serialize};
 use std::cell::{Cell, RefCell};
@@ -34,11 +35,14 @@ pub struct HybridCoSim {
     /// what the probe was computed for and the outputs it gave: a host's get between two
     /// steps is answered once, and the following doStep reuses the probe's signals instead of
     /// evaluating the same sample again; valid only while its key's epoch is the present one
-    probed: Cell<Option<(ProbeKey, Outputs)>>,
+    probed: Cell<Option<(ProbeKey, Probed)>>,
     /// bumped by every change of the running state (initialise, do_step, restore_state), which
     /// is what makes an earlier probe stale
     epoch: u64,
 }
+
+/// What a probe found: the physics' current (i_re, i_im) and the hybrid's outputs.
+type Probed = ((f64, f64), Outputs);
 
 /// The state (by its epoch) and the exact inputs a probe was evaluated at.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -122,11 +126,12 @@ impl HybridCoSim {
         self.correction.order()
     }
 
-    /// The outputs of the last probe when it was made for `key` (this state, these inputs).
-    fn probed_outputs(&self, key: &ProbeKey) -> Option<Outputs> {
+    /// The physics' current (i_re, i_im) of the last probe when it was made for `key` (this
+    /// state, these inputs).
+    fn probed_physics(&self, key: &ProbeKey) -> Option<(f64, f64)> {
         self.probed
             .get()
-            .and_then(|(k, outputs)| (k == *key).then_some(outputs))
+            .and_then(|(k, (physics, _))| (k == *key).then_some(physics))
     }
 }
 
@@ -182,17 +187,34 @@ impl CoSimModel for HybridCoSim {
                 expected: "a communication step > 0 s".into(),
             });
         }
-        let probed = self
-            .probed_outputs(&ProbeKey::new(self.epoch, inputs))
-            .is_some();
+        let key = ProbeKey::new(self.epoch, inputs);
+        let probed = self.probed_physics(&key);
         let running = self
             .running
             .as_mut()
             .ok_or(CoSimError::NotInitialised { call: "do_step" })?;
+        // the physics' current at this sample is an input of the correction: from the probe
+        // a get left at this state and these inputs, or from a probe made here (which the
+        // first block step then takes over, so it costs no extra evaluation)
+        let physics = match probed {
+            Some(p) => p,
+            None => {
+                // the probe's signals change: an earlier probe no longer stands behind them
+                self.probed.set(None);
+                let [i_re, i_im, _, _] =
+                    running
+                        .block
+                        .peek(&self.model, sample(inputs), self.probe.get_mut());
+                (i_re, i_im)
+            }
+        };
         // the correction first, on a copy: a failed step changes nothing
-        let u = running
-            .pre_fault
-            .input(inputs.v_re, inputs.v_im, inputs.f_grid);
+        let u = self.correction.bounded(running.pre_fault.input(
+            inputs.v_re,
+            inputs.v_im,
+            inputs.f_grid,
+            physics,
+        ));
         running.z_trial.copy_from_slice(&running.z);
         self.correction.step(&mut running.z_trial, &u, h_s);
         if running.z_trial.iter().any(|z| !z.is_finite()) {
@@ -207,12 +229,12 @@ impl CoSimModel for HybridCoSim {
         let target = running.elapsed_s + h_s;
         // the block model steps at its internal step while a whole step fits before the
         // target (a relative slack absorbs rounding of sums of host steps); the first step
-        // takes the signals of a probe made at this state and these inputs when there is one
+        // takes the signals of the probe made at this state and these inputs
         let h = self.internal_step_s;
         let s = sample(inputs);
-        let mut reuse = probed;
+        let mut from_probe = true;
         while (running.block_steps + 1) as f64 * h <= target + 1e-9 * h {
-            if std::mem::take(&mut reuse) {
+            if std::mem::take(&mut from_probe) {
                 running
                     .block
                     .step_from_probe(&self.model, self.probe.get_mut());
@@ -231,21 +253,28 @@ impl CoSimModel for HybridCoSim {
             .as_ref()
             .ok_or(CoSimError::NotInitialised { call: "outputs" })?;
         let key = ProbeKey::new(self.epoch, inputs);
-        if let Some(outputs) = self.probed_outputs(&key) {
-            return Ok(outputs);
+        if let Some((k, (_, outputs))) = self.probed.get() {
+            if k == key {
+                return Ok(outputs);
+            }
         }
         let [i_re, i_im, p, q] =
             running
                 .block
                 .peek(&self.model, sample(inputs), &mut self.probe.borrow_mut());
-        let u = running
-            .pre_fault
-            .input(inputs.v_re, inputs.v_im, inputs.f_grid);
-        let (di_d, di_q) = self.correction.output(&running.z, &u);
+        let u = self.correction.bounded(running.pre_fault.input(
+            inputs.v_re,
+            inputs.v_im,
+            inputs.f_grid,
+            (i_re, i_im),
+        ));
+        let (di_d, di_q) = self
+            .correction
+            .output(&running.z, &u, in_dip(inputs.v_re, inputs.v_im));
         let (di_re, di_im) = running.pre_fault.to_network(di_d, di_q);
         let outputs =
             Outputs { i_re, i_im, p, q }.plus_current(inputs.v_re, inputs.v_im, di_re, di_im);
-        self.probed.set(Some((key, outputs)));
+        self.probed.set(Some((key, ((i_re, i_im), outputs))));
         Ok(outputs)
     }
 

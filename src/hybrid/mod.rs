@@ -36,7 +36,8 @@ use std::path::{Path, PathBuf};
 use thiserror::Error;
 use understudy_runtime::block::{EvalConfig, OutputSeries, Template};
 use understudy_runtime::correction::{
-    rows_of, Correction, CorrectionStepper, PreFault, CORRECTION_OUTPUTS, N_INPUTS,
+    in_dip, rows_of, Correction, CorrectionStepper, PreFault, CORRECTION_OUTPUTS, N_INPUTS,
+    PHYSICS_INPUTS,
 };
 use understudy_runtime::cosim::{
     Bases, CoSimError, CoSimModel, Envelope, Inputs, ModelFile, ModelKind, Outputs, Setpoints,
@@ -428,7 +429,9 @@ pub struct CaseValidation {
 /// Signals compared, in order.
 pub const SIGNALS: [&str; 4] = ["p", "q", "i_p", "i_q"];
 
-fn comparisons(
+/// The validation's comparison of model outputs `o` with the recorded `case`: per signal of
+/// [`SIGNALS`], window errors and NRMSE.
+pub fn comparisons(
     case: &Case,
     o: &OutputSeries<f64>,
     windows: &WindowConfig,
@@ -482,11 +485,67 @@ pub struct HybridOutcome {
     pub cross_validation: Option<CrossValidation>,
 }
 
-/// One ridge candidate of the cross-validation: mean NRMSE (% of rating) over the left-out
-/// traces and the four signals, for the correction as fitted and with its best output shrink.
+/// What the cross-validation chooses for the correction's output map.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct CorrectionChoice {
+    pub ridge: f64,
+    /// Factors of the (Δi_d, Δi_q) rows of the output map, from [`SHRINK_CANDIDATES`].
+    pub shrink: [f64; 2],
+    pub structure: Structure,
+}
+
+/// The form of the correction's output map the cross-validation chooses from.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Structure {
+    /// Whether the physics' current is an input ([`PHYSICS_INPUTS`]); without it the
+    /// correction is driven by the terminal voltage and frequency alone.
+    pub physics_inputs: bool,
+    /// Whether the correction has a dip map (C_dip, D_dip: a second output map added while the
+    /// terminal voltage is in a dip), or one output map for all voltages.
+    pub dip_map: bool,
+}
+
+impl Structure {
+    /// Every structure, simplest first.
+    pub const ALL: [Structure; 4] = [
+        Structure {
+            physics_inputs: false,
+            dip_map: false,
+        },
+        Structure {
+            physics_inputs: true,
+            dip_map: false,
+        },
+        Structure {
+            physics_inputs: false,
+            dip_map: true,
+        },
+        Structure {
+            physics_inputs: true,
+            dip_map: true,
+        },
+    ];
+
+    fn words(&self) -> String {
+        format!(
+            "{} the physics' current, {} the dip map",
+            if self.physics_inputs {
+                "with"
+            } else {
+                "without"
+            },
+            if self.dip_map { "with" } else { "without" }
+        )
+    }
+}
+
+/// One candidate of the cross-validation (a ridge, with or without the dip map): mean NRMSE
+/// (% of rating) over the left-out traces and the four signals, for the correction as fitted
+/// and with its best output shrink.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct CvRow {
     pub ridge: f64,
+    pub structure: Structure,
     pub fitted_percent: f64,
     /// Best shrink factors of (Δi_d, Δi_q) for this ridge, from [`SHRINK_CANDIDATES`].
     pub shrink: [f64; 2],
@@ -505,37 +564,44 @@ pub struct CrossValidation {
     /// The physics alone on the left-out traces (%).
     pub reduced_percent: f64,
     pub rows: Vec<CvRow>,
-    /// The choice: ridge, shrink of (Δi_d, Δi_q), and its cross-validated NRMSE (%).
-    pub ridge: f64,
-    pub shrink: [f64; 2],
+    /// The choice and its cross-validated NRMSE (%).
+    pub choice: CorrectionChoice,
     pub hybrid_percent: f64,
+}
+
+impl CvRow {
+    /// This row as the summary words it.
+    pub fn describe(&self) -> String {
+        format!(
+            "ridge {:e} {}: {:.3} % as fitted, {:.3} % with (Δi_d, Δi_q) shrunk by ({}, {})",
+            self.ridge,
+            self.structure.words(),
+            self.fitted_percent,
+            self.shrunk_percent,
+            self.shrink[0],
+            self.shrink[1]
+        )
+    }
 }
 
 impl CrossValidation {
     /// One sentence for the report and the CLI.
     pub fn summary(&self) -> String {
-        let rows: Vec<String> = self
-            .rows
-            .iter()
-            .map(|r| {
-                format!(
-                    "ridge {:e}: {:.3} % as fitted, {:.3} % with (Δi_d, Δi_q) shrunk by ({}, {})",
-                    r.ridge, r.fitted_percent, r.shrunk_percent, r.shrink[0], r.shrink[1]
-                )
-            })
-            .collect();
+        let rows: Vec<String> = self.rows.iter().map(CvRow::describe).collect();
+        let c = &self.choice;
         format!(
             "leave-one-trace-out cross-validation over {} training traces (mean NRMSE of P, Q, \
-             i_p, i_q, % of rating): physics alone {:.3} %; {}; chosen ridge {:e} with the \
+             i_p, i_q, % of rating): physics alone {:.3} %; {}; chosen ridge {:e} {} with the \
              output map shrunk by {} (Δi_d) and {} (Δi_q): {:.3} %{}",
             self.folds,
             self.reduced_percent,
             rows.join("; "),
-            self.ridge,
-            self.shrink[0],
-            self.shrink[1],
+            c.ridge,
+            c.structure.words(),
+            c.shrink[0],
+            c.shrink[1],
             self.hybrid_percent,
-            if self.shrink.iter().all(|&s| s == 0.0) {
+            if c.shrink.iter().all(|&s| s == 0.0) {
                 " — the data do not support a correction: none exported"
             } else {
                 ""
@@ -765,8 +831,9 @@ pub fn fit_hybrid(
         config.delays, config.rank
     ));
     let residual_refs: Vec<&[Vec<f64>; 2]> = residuals.iter().collect();
-    let pole_fit = correction_poles(&training, &residual_refs, config, step_s)?;
-    let (ridge, shrink, cross_validation) = if config.cross_validate {
+    let physics_refs: Vec<&OutputSeries<f64>> = physics_outputs.iter().collect();
+    let pole_fit = correction_poles(&training, &residual_refs, &physics_refs, config, step_s)?;
+    let (choice, cross_validation) = if config.cross_validate {
         progress(&format!(
             "cross-validation: leave one of {} training traces out",
             training.len()
@@ -781,16 +848,25 @@ pub fn fit_hybrid(
             &ridges,
         )?;
         progress(&format!("cross-validation: {}", cv.summary()));
-        (cv.ridge, cv.shrink, Some(cv))
+        (cv.choice, Some(cv))
     } else {
-        (config.ridge.unwrap_or(RIDGE_CANDIDATES[0]), [1.0; 2], None)
+        // without the cross-validation: the correction as fitted, with the dip map
+        let choice = CorrectionChoice {
+            ridge: config.ridge.unwrap_or(RIDGE_CANDIDATES[0]),
+            shrink: [1.0; 2],
+            structure: Structure {
+                physics_inputs: true,
+                dip_map: true,
+            },
+        };
+        (choice, None)
     };
     let poles = &pole_fit.poles;
-    let per_input = free_run_correction(poles, &training, &residual_refs, ridge, shrink)?;
+    let per_input = free_run_correction(poles, &training, &residual_refs, &physics_refs, choice)?;
     let fitted_order = per_input.order();
     // the same transfer function with one state per output and pole: what the FMU steps; a
     // correction the cross-validation dropped entirely is exported as none at all
-    let correction = if shrink.iter().all(|&s| s == 0.0) {
+    let correction = if choice.shrink.iter().all(|&s| s == 0.0) {
         Correction::none()
     } else {
         minimal_modal(poles, &per_input)
@@ -907,25 +983,44 @@ fn free_run_correction(
     poles: &[Complex64],
     training: &[&Case],
     residuals: &[&[Vec<f64>; 2]],
-    ridge: f64,
-    shrink: [f64; 2],
+    physics: &[&OutputSeries<f64>],
+    choice: CorrectionChoice,
 ) -> Result<Correction, HybridError> {
+    let CorrectionChoice {
+        ridge,
+        shrink,
+        structure,
+    } = choice;
     let (a, b) = per_input_realisation(poles);
     let n = a.nrows();
-    let per_trace = free_run_features(poles, training, residuals)?;
+    let range = input_range(training, physics);
+    let per_trace: Vec<Features> = free_run_features(poles, training, residuals, physics, &range)?
+        .into_iter()
+        .map(|f| masked(f, structure))
+        .collect();
     let all: Vec<&Features> = per_trace.iter().collect();
     let theta = output_map(&all, ridge)?; // p × outputs
-    let c = DMatrix::from_fn(CORRECTION_OUTPUTS.len(), n, |k, i| {
-        shrink[k] * theta[(i, k)]
-    });
-    let d = DMatrix::from_fn(CORRECTION_OUTPUTS.len(), N_INPUTS, |k, j| {
-        shrink[k] * theta[(n + j, k)]
-    });
+                                          // rows of θ: [z, u] always, then [z, u] again for the dip (see `free_run_features`)
+    let outputs = CORRECTION_OUTPUTS.len();
+    let part = |at: usize, cols: usize| {
+        rows_of(&DMatrix::from_fn(outputs, cols, |k, i| {
+            shrink[k] * theta[(at + i, k)]
+        }))
+    };
+    let w = n + N_INPUTS;
+    let (c_dip, d_dip) = if structure.dip_map {
+        (part(w, n), part(w + n, N_INPUTS))
+    } else {
+        (Vec::new(), Vec::new())
+    };
     Ok(Correction {
         a: rows_of(&a),
         b: rows_of(&b),
-        c: rows_of(&c),
-        d: rows_of(&d),
+        c: part(0, n),
+        d: part(n, N_INPUTS),
+        c_dip,
+        d_dip,
+        input_range: range,
     })
 }
 
@@ -942,6 +1037,7 @@ struct PoleFit {
 fn correction_poles(
     cases: &[&Case],
     residuals: &[&[Vec<f64>; 2]],
+    physics: &[&OutputSeries<f64>],
     config: &HybridConfig,
     step_s: f64,
 ) -> Result<PoleFit, HybridError> {
@@ -952,13 +1048,13 @@ fn correction_poles(
     let mut inputs: Vec<DMatrix<f64>> = Vec::new();
     // the raw residuals, not their DCT compression: kept at 5 %, the compression loses more than
     // half of the residual's energy (see the report), which the correction needs
-    for (c, r) in cases.iter().zip(residuals) {
+    for ((c, r), o) in cases.iter().zip(residuals).zip(physics) {
         let n = c.data.len();
         let series = DMatrix::from_fn(2, n, |ch, k| r[ch][k]);
         let pf = c.pre_fault().frame();
         let u = DMatrix::from_fn(N_INPUTS, n, |row, k| {
             let i = c.inputs(k);
-            pf.input(i.v_re, i.v_im, i.f_grid)[row]
+            pf.input(i.v_re, i.v_im, i.f_grid, (o.i_re[k], o.i_im[k]))[row]
         });
         let e = delay_embed(&series, &u, config.delays, 1)?;
         states.push(e.states);
@@ -999,7 +1095,52 @@ fn correction_poles(
     })
 }
 
-/// Features [z_k, u_k] (samples × (order + inputs)) and targets (samples × outputs) of one trace.
+/// Per correction input, its [min, max] over every sample of `cases`.
+fn input_range(cases: &[&Case], physics: &[&OutputSeries<f64>]) -> Vec<[f64; 2]> {
+    let mut range = vec![[f64::INFINITY, f64::NEG_INFINITY]; N_INPUTS];
+    for (c, o) in cases.iter().zip(physics) {
+        let pf = c.pre_fault().frame();
+        for k in 0..c.data.len() {
+            let i = c.inputs(k);
+            for (r, x) in
+                range
+                    .iter_mut()
+                    .zip(pf.input(i.v_re, i.v_im, i.f_grid, (o.i_re[k], o.i_im[k])))
+            {
+                *r = [r[0].min(x), r[1].max(x)];
+            }
+        }
+    }
+    range
+}
+
+/// `features` (see [`free_run_features`]) of the given structure: without the physics'
+/// inputs their columns (their states and their inputs, in both halves) are zero, without the
+/// dip map its half is cut off. A zero column gets a zero row in the output map
+/// ([`output_map`]), so the correction is the one fitted without those features.
+fn masked(features: Features, structure: Structure) -> Features {
+    let (mut phi, y) = features;
+    let w = phi.ncols() / 2;
+    if !structure.physics_inputs {
+        let n = w - N_INPUTS;
+        let block = n / N_INPUTS;
+        for half in [0, w] {
+            for j in PHYSICS_INPUTS {
+                phi.columns_mut(half + j * block, block).fill(0.0);
+                phi.column_mut(half + n + j).fill(0.0);
+            }
+        }
+    }
+    if structure.dip_map {
+        (phi, y)
+    } else {
+        (phi.columns(0, w).into_owned(), y)
+    }
+}
+
+/// Features [z_k, u_k, g_k·z_k, g_k·u_k] (samples × 2·(order + inputs)), g_k = 1 while the
+/// terminal voltage is in a dip ([`in_dip`]) and 0 otherwise, and targets (samples × outputs)
+/// of one trace.
 type Features = (DMatrix<f64>, DMatrix<f64>);
 
 /// The states of the per-input realisation of `poles` simulated from each trace's inputs alone
@@ -1009,6 +1150,8 @@ fn free_run_features(
     poles: &[Complex64],
     cases: &[&Case],
     residuals: &[&[Vec<f64>; 2]],
+    physics: &[&OutputSeries<f64>],
+    range: &[[f64; 2]],
 ) -> Result<Vec<Features>, HybridError> {
     let (a, b) = per_input_realisation(poles);
     let n = a.nrows();
@@ -1018,6 +1161,9 @@ fn free_run_features(
         b: rows_of(&b),
         c: rows_of(&DMatrix::zeros(outputs, n)),
         d: Vec::new(),
+        c_dip: Vec::new(),
+        d_dip: Vec::new(),
+        input_range: range.to_vec(),
     };
     let stepper = CorrectionStepper::new(&unfitted).map_err(|e| HybridError::Runtime {
         trace: "(correction)".into(),
@@ -1026,17 +1172,24 @@ fn free_run_features(
     Ok(cases
         .par_iter()
         .zip(residuals)
-        .map(|(c, r)| {
+        .zip(physics)
+        .map(|((c, r), o)| {
             let mut stepper = stepper.clone();
             let pf = c.pre_fault().frame();
             let len = c.data.len();
-            let mut phi = DMatrix::zeros(len, n + N_INPUTS);
+            let w = n + N_INPUTS;
+            let mut phi = DMatrix::zeros(len, 2 * w);
             let mut z = vec![0.0; n];
             for k in 0..len {
                 let i = c.inputs(k);
-                let u = pf.input(i.v_re, i.v_im, i.f_grid);
+                let physics = (o.i_re[k], o.i_im[k]);
+                let u = stepper.bounded(pf.input(i.v_re, i.v_im, i.f_grid, physics));
+                let dip = in_dip(i.v_re, i.v_im);
                 for (col, v) in z.iter().chain(u.iter()).enumerate() {
                     phi[(k, col)] = *v;
+                    if dip {
+                        phi[(k, w + col)] = *v;
+                    }
                 }
                 if k + 1 < len {
                     stepper.step(&mut z, &u, c.time_s[k + 1] - c.time_s[k]);
@@ -1075,7 +1228,9 @@ fn output_map(per_trace: &[&Features], ridge: f64) -> Result<DMatrix<f64>, Hybri
         .collect();
     let s = DMatrix::from_diagonal(&nalgebra::DVector::from_vec(scale));
     let mut g = &s * &gram * &s;
-    let mean_diag = g.trace() / p as f64;
+    // over the features present (a zero column, see `masked`, adds nothing to the scale)
+    let present = (0..p).filter(|&i| gram[(i, i)] > 0.0).count().max(1);
+    let mean_diag = g.trace() / present as f64;
     for i in 0..p {
         g[(i, i)] += ridge.max(1e-12) * mean_diag;
     }
@@ -1125,9 +1280,10 @@ fn corrected_nrmse(
 }
 
 /// Leave-one-trace-out cross-validation of the correction (see [`CrossValidation`]) over the
-/// ridge candidates `ridges` and the output shrink factors [`SHRINK_CANDIDATES`]; the choice is
-/// the smallest mean NRMSE over the left-out traces (on a tie the smaller shrink, then the
-/// larger ridge: the more cautious correction).
+/// structures of the output map ([`Structure::ALL`]), the ridge candidates `ridges` and the output shrink
+/// factors [`SHRINK_CANDIDATES`]; the choice is the smallest mean NRMSE over the left-out
+/// traces (on a tie the smaller shrink, then the simpler structure and the larger ridge: the
+/// more cautious correction).
 fn cross_validate(
     training: &[&Case],
     residuals: &[[Vec<f64>; 2]],
@@ -1138,7 +1294,12 @@ fn cross_validate(
 ) -> Result<CrossValidation, HybridError> {
     let m = training.len();
     let shrinks = SHRINK_CANDIDATES.len();
-    // per fold: the physics' NRMSE and, per ridge, per (shrink d, shrink q), the hybrid's
+    // the candidates in order: the simplest structure first, each over the ridges
+    let candidates: Vec<(Structure, f64)> = Structure::ALL
+        .iter()
+        .flat_map(|&st| ridges.iter().map(move |&r| (st, r)))
+        .collect();
+    // per fold: the physics' NRMSE and, per candidate, per (shrink d, shrink q), the hybrid's
     type Fold = (f64, Vec<Vec<f64>>);
     let folds: Vec<Fold> = (0..m)
         .into_par_iter()
@@ -1146,17 +1307,29 @@ fn cross_validate(
             let keep: Vec<usize> = (0..m).filter(|&i| i != out).collect();
             let cases: Vec<&Case> = keep.iter().map(|&i| training[i]).collect();
             let res: Vec<&[Vec<f64>; 2]> = keep.iter().map(|&i| &residuals[i]).collect();
-            let poles = correction_poles(&cases, &res, config, step_s)?.poles;
+            let phys: Vec<&OutputSeries<f64>> = keep.iter().map(|&i| &physics[i]).collect();
+            let poles = correction_poles(&cases, &res, &phys, config, step_s)?.poles;
             let left = training[out];
-            let mut features = free_run_features(&poles, &[left], &[&residuals[out]])?;
-            let (phi_left, _) = features.pop().expect("one trace in, one out");
-            let train = free_run_features(&poles, &cases, &res)?;
-            let train_refs: Vec<&Features> = train.iter().collect();
+            // the left-out trace's inputs are held inside the range of the fold's own traces
+            let range = input_range(&cases, &phys);
+            let mut features = free_run_features(
+                &poles,
+                &[left],
+                &[&residuals[out]],
+                &[&physics[out]],
+                &range,
+            )?;
+            let left_features = features.pop().expect("one trace in, one out");
+            let train = free_run_features(&poles, &cases, &res, &phys, &range)?;
             let zero = |_: usize| 0.0;
             let reduced = corrected_nrmse(left, &physics[out], &zero, &zero, &config.windows)?;
-            let per_ridge = ridges
-                .iter()
-                .map(|&ridge| {
+            let mut per_candidate = Vec::with_capacity(candidates.len());
+            for structure in Structure::ALL {
+                let train: Vec<Features> =
+                    train.iter().map(|f| masked(f.clone(), structure)).collect();
+                let train_refs: Vec<&Features> = train.iter().collect();
+                let (phi_left, _) = masked(left_features.clone(), structure);
+                for &ridge in ridges {
                     let prediction = &phi_left * output_map(&train_refs, ridge)?;
                     let mut scores = Vec::with_capacity(shrinks * shrinks);
                     for sd in SHRINK_CANDIDATES {
@@ -1170,54 +1343,67 @@ fn cross_validate(
                             )?);
                         }
                     }
-                    Ok(scores)
-                })
-                .collect::<Result<Vec<_>, HybridError>>()?;
-            Ok((reduced, per_ridge))
+                    per_candidate.push(scores);
+                }
+            }
+            Ok((reduced, per_candidate))
         })
         .collect::<Result<_, HybridError>>()?;
     let mean = |f: &dyn Fn(&Fold) -> f64| folds.iter().map(f).sum::<f64>() / m as f64;
     let reduced_percent = mean(&|f| f.0);
     let full = (shrinks - 1) * shrinks + (shrinks - 1);
-    let mut rows = Vec::with_capacity(ridges.len());
-    let mut best: Option<(f64, usize, usize)> = None; // (score, ridge index, shrink index)
-    for (ri, &ridge) in ridges.iter().enumerate() {
+    let shrink_of = |si: usize| {
+        [
+            SHRINK_CANDIDATES[si / shrinks],
+            SHRINK_CANDIDATES[si % shrinks],
+        ]
+    };
+    let mut rows = Vec::with_capacity(candidates.len());
+    // (score, total shrink, candidate index, shrink index)
+    let mut best: Option<(f64, f64, usize, usize)> = None;
+    for (ci, &(structure, ridge)) in candidates.iter().enumerate() {
         let scores: Vec<f64> = (0..shrinks * shrinks)
-            .map(|si| mean(&|f| f.1[ri][si]))
+            .map(|si| mean(&|f| f.1[ci][si]))
             .collect();
         // shrink pairs in order of total shrink factor, so a tie keeps the smaller
+        let total = |i: usize| shrink_of(i).iter().sum::<f64>();
         let mut order: Vec<usize> = (0..shrinks * shrinks).collect();
-        order.sort_by(|&a, &b| {
-            let total = |i: usize| SHRINK_CANDIDATES[i / shrinks] + SHRINK_CANDIDATES[i % shrinks];
-            total(a).total_cmp(&total(b))
-        });
+        order.sort_by(|&a, &b| total(a).total_cmp(&total(b)));
         let si = order
             .into_iter()
             .min_by(|&a, &b| scores[a].total_cmp(&scores[b]))
             .expect("shrink candidates");
         rows.push(CvRow {
             ridge,
+            structure,
             fitted_percent: scores[full],
-            shrink: [
-                SHRINK_CANDIDATES[si / shrinks],
-                SHRINK_CANDIDATES[si % shrinks],
-            ],
+            shrink: shrink_of(si),
             shrunk_percent: scores[si],
         });
-        if best.is_none_or(|(s, _, _)| scores[si] <= s) {
-            best = Some((scores[si], ri, si));
+        // better score wins; on a tie the smaller shrink, then (candidates run from the
+        // simplest structure and the smallest ridge) the later ridge of the same structure
+        let better = match best {
+            None => true,
+            Some((s, t, bci, _)) => match scores[si].total_cmp(&s).then(total(si).total_cmp(&t)) {
+                std::cmp::Ordering::Less => true,
+                std::cmp::Ordering::Equal => candidates[bci].0 == structure,
+                std::cmp::Ordering::Greater => false,
+            },
+        };
+        if better {
+            best = Some((scores[si], total(si), ci, si));
         }
     }
-    let (hybrid_percent, ri, si) = best.expect("at least one ridge candidate");
+    let (hybrid_percent, _, ci, si) = best.expect("at least one candidate");
     Ok(CrossValidation {
         folds: m,
         reduced_percent,
         rows,
-        ridge: ridges[ri],
-        shrink: [
-            SHRINK_CANDIDATES[si / shrinks],
-            SHRINK_CANDIDATES[si % shrinks],
-        ],
+        choice: CorrectionChoice {
+            ridge: candidates[ci].1,
+            shrink: shrink_of(si),
+            structure: candidates[ci].0,
+        },
         hybrid_percent,
     })
 }
@@ -1225,7 +1411,9 @@ fn cross_validate(
 /// The correction of [`free_run_correction`] (per input j, one modal block per pole, output map
 /// C fitted) realised with one state per output and pole: the same transfer function
 /// C (sI − A)⁻¹ B + D and, from z = 0, the same output for every input (exact, not a
-/// truncation), of order 2·(modes) instead of N_INPUTS·(modes).
+/// truncation), of order 2·(modes) instead of N_INPUTS·(modes). With a dip map C_dip, its two
+/// outputs are realised the same way beside C's (order 4·(modes)), C reading the first
+/// states of each pole and C_dip the others.
 ///
 /// Why it is exact: per pole, y gets Σ_j c_j x_j with x_j driven by u_j alone through the same
 /// pole; ξ = Σ_j c_j x_j obeys the pole's own dynamics driven by Σ_j c_j u_j (residue form of a
@@ -1237,25 +1425,40 @@ fn cross_validate(
 /// da_k/dt = σ a_k − ω b_k + Re(w_k)·u, db_k/dt = ω a_k + σ b_k + Im(w_k)·u, y_k = a_k.
 /// The result is block diagonal with 1×1 and 2×2 blocks, which the runtime steps in O(order).
 pub fn minimal_modal(poles: &[Complex64], per_input: &Correction) -> Correction {
-    let (_, _, c_full, d) = per_input
+    let (_, _, c_plain, d) = per_input
         .matrices()
         .expect("free_run_correction builds consistent matrices");
+    let (c_dip_full, d_dip) = per_input
+        .dip_matrices()
+        .expect("free_run_correction builds consistent matrices");
     let outputs = CORRECTION_OUTPUTS.len();
+    let gated = !per_input.c_dip.is_empty();
+    // the channels realised: the outputs of C, then (when there is one) those of C_dip, each
+    // with its own states; C and C_dip each read their own channels
+    let c_full = if gated {
+        let mut both = DMatrix::zeros(2 * outputs, c_plain.ncols());
+        both.rows_mut(0, outputs).copy_from(&c_plain);
+        both.rows_mut(outputs, outputs).copy_from(&c_dip_full);
+        both
+    } else {
+        c_plain
+    };
+    let channels = c_full.nrows();
     let block: usize = poles.iter().map(|p| if p.im == 0.0 { 1 } else { 2 }).sum();
     assert_eq!(
         c_full.ncols(),
         block * N_INPUTS,
         "per-input realisation order"
     );
-    let n = block * outputs;
+    let n = block * channels;
     let mut a = DMatrix::zeros(n, n);
     let mut b = DMatrix::zeros(n, N_INPUTS);
-    let mut c = DMatrix::zeros(outputs, n);
+    let mut c = DMatrix::zeros(channels, n);
     // `at`: first state of this pole in each input's block; `to`: first new state of it
     let (mut at, mut to) = (0, 0);
     for p in poles {
         if p.im == 0.0 {
-            for k in 0..outputs {
+            for k in 0..channels {
                 a[(to + k, to + k)] = p.re;
                 c[(k, to + k)] = 1.0;
                 for j in 0..N_INPUTS {
@@ -1263,9 +1466,9 @@ pub fn minimal_modal(poles: &[Complex64], per_input: &Correction) -> Correction 
                 }
             }
             at += 1;
-            to += outputs;
+            to += channels;
         } else {
-            for k in 0..outputs {
+            for k in 0..channels {
                 let (re, im) = (to + 2 * k, to + 2 * k + 1);
                 a[(re, re)] = p.re;
                 a[(im, im)] = p.re;
@@ -1278,14 +1481,25 @@ pub fn minimal_modal(poles: &[Complex64], per_input: &Correction) -> Correction 
                 }
             }
             at += 2;
-            to += 2 * outputs;
+            to += 2 * channels;
         }
     }
+    let (c_dip, d_dip) = if gated {
+        (
+            rows_of(&c.rows(outputs, outputs).into_owned()),
+            rows_of(&d_dip),
+        )
+    } else {
+        (Vec::new(), Vec::new())
+    };
     Correction {
         a: rows_of(&a),
         b: rows_of(&b),
-        c: rows_of(&c),
+        c: rows_of(&c.rows(0, outputs).into_owned()),
         d: rows_of(&d),
+        c_dip,
+        d_dip,
+        input_range: per_input.input_range.clone(),
     }
 }
 
@@ -1295,10 +1509,10 @@ mod tests {
 
     #[test]
     fn minimal_modal_realisation_gives_the_same_output_as_the_per_input_one() {
-        // two real poles and two pairs, a per-input realisation (order 6 × 6 = 36) with an
+        // two real poles and two pairs, a per-input realisation (order 6 × 8 = 48) with an
         // arbitrary output map, driven by the same piecewise-constant inputs from z = 0 through
         // the runtime's stepper: the outputs agree to rounding (1e-12 of their scale), the
-        // order falls to 2 × 6 = 12
+        // order falls to 4 × 6 = 24 (two outputs of C, two of C_dip)
         let poles = [
             Complex64::new(-5.0, 0.0),
             Complex64::new(-40.0, 0.0),
@@ -1310,22 +1524,33 @@ mod tests {
         assert_eq!(n, 6 * N_INPUTS);
         let c = DMatrix::from_fn(2, n, |i, j| ((3 * i + 7 * j) as f64 * 0.37).sin());
         let d = DMatrix::from_fn(2, N_INPUTS, |i, j| 0.1 * (i + j) as f64);
+        let c_dip = DMatrix::from_fn(2, n, |i, j| ((5 * i + 3 * j) as f64 * 0.21).cos());
+        let d_dip = DMatrix::from_fn(2, N_INPUTS, |i, j| 0.05 * (i * j) as f64);
         let full = Correction {
             a: rows_of(&a),
             b: rows_of(&b),
             c: rows_of(&c),
             d: rows_of(&d),
+            c_dip: rows_of(&c_dip),
+            d_dip: rows_of(&d_dip),
+            input_range: Vec::new(),
         };
         let small = minimal_modal(&poles, &full);
-        assert_eq!(small.order(), 12);
+        // two outputs of C and two of C_dip per state of a pole
+        assert_eq!(small.order(), 24);
         let mut s_full = CorrectionStepper::new(&full).unwrap();
         let mut s_small = CorrectionStepper::new(&small).unwrap();
-        let (mut z_full, mut z_small) = (vec![0.0; n], vec![0.0; 12]);
+        let (mut z_full, mut z_small) = (vec![0.0; n], vec![0.0; 24]);
         let (mut worst, mut scale) = (0.0f64, 0.0f64);
         for k in 0..400 {
             let u: [f64; N_INPUTS] =
                 std::array::from_fn(|j| ((k / 37 + j) as f64 * 1.3).sin() * (j + 1) as f64);
-            let (yf, ys) = (s_full.output(&z_full, &u), s_small.output(&z_small, &u));
+            // in and out of a dip every 50 samples
+            let dip = (k / 50) % 2 == 1;
+            let (yf, ys) = (
+                s_full.output(&z_full, &u, dip),
+                s_small.output(&z_small, &u, dip),
+            );
             worst = worst.max((yf.0 - ys.0).abs()).max((yf.1 - ys.1).abs());
             scale = scale.max(yf.0.abs()).max(yf.1.abs());
             s_full.step(&mut z_full, &u, 1e-3);
@@ -1333,8 +1558,8 @@ mod tests {
         }
         assert!(scale > 0.1, "the test excites the outputs: {scale}");
         assert!(worst <= 1e-12 * scale, "{worst:e} of {scale}");
-        // block diagonal with 1×1 and 2×2 blocks: the stepper keeps 2 + 2 + 4·2 + 4·2 = 20
-        // entries of Φ per output pair, not 12² = 144
-        assert_eq!(s_small.phi_entries(), Some(2 * (1 + 1 + 4 + 4)));
+        // block diagonal with 1×1 and 2×2 blocks: the stepper keeps 1 + 1 + 4 + 4 = 10
+        // entries of Φ per channel (four: two of C, two of C_dip), not 24² = 576
+        assert_eq!(s_small.phi_entries(), Some(4 * (1 + 1 + 4 + 4)));
     }
 }
