@@ -27,7 +27,9 @@ pub fn write_report_with(
         "Trained on {} traces, validated on {} held-out traces (never used in fitting). \
          Correction: poles from DMD with control on {} delays (rank {}), realised per input \
          with its output map fitted for free run (order {}), then realised exactly with one \
-         state per output and pole: order {} (continuous time, modal, block diagonal). \
+         state per output (of each output map: the dip map, when chosen, has its own) and \
+         pole: order {} (continuous time, modal, block diagonal); its inputs are held inside \
+         the range seen in training. \
          Mean NRMSE over held-out cases and signals: reduced {:.3} %, hybrid {:.3} % of rating. \
          Verdict: {}.",
         outcome.training.len(),
