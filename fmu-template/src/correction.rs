@@ -257,9 +257,9 @@ impl Correction {
         let outputs = CORRECTION_OUTPUTS.len();
         Ok((
             to_matrix("a", &self.a, n, n)?,
-            input_matrix("b", &self.b, n)?,
+            input_matrix("b", &self.b, n, false)?,
             to_matrix("c", &self.c, outputs, n)?,
-            input_matrix("d", &self.d, outputs)?,
+            input_matrix("d", &self.d, outputs, true)?,
         ))
     }
 
@@ -271,19 +271,20 @@ impl Correction {
         } else {
             to_matrix("c_dip", &self.c_dip, outputs, self.order())?
         };
-        Ok((c, input_matrix("d_dip", &self.d_dip, outputs)?))
+        Ok((c, input_matrix("d_dip", &self.d_dip, outputs, true)?))
     }
 }
 
-/// An `r` × [`N_INPUTS`] matrix from its rows: empty means zero (not for B), rows of [`LEGACY_INPUTS`]
-/// entries get zero columns for the inputs added since.
+/// An `r` × [`N_INPUTS`] matrix from its rows: empty means zero when `empty_is_zero` (D and
+/// D_dip may be left out, B may not), rows of [`LEGACY_INPUTS`] entries get zero columns for
+/// the inputs added since.
 fn input_matrix(
     name: &'static str,
     rows: &[Vec<f64>],
     r: usize,
+    empty_is_zero: bool,
 ) -> Result<DMatrix<f64>, CorrectionError> {
-    // only D and D_dip may be left out (B is read with `r` = order, where empty means order 0)
-    if rows.is_empty() && (name != "b" || r == 0) {
+    if rows.is_empty() && empty_is_zero {
         return Ok(DMatrix::zeros(r, N_INPUTS));
     }
     if rows.len() == r && r > 0 && rows.iter().all(|row| row.len() == LEGACY_INPUTS) {

@@ -126,13 +126,23 @@ impl HybridCoSim {
         self.correction.order()
     }
 
-    /// The physics' current (i_re, i_im) of the last probe when it was made for `key` (this
-    /// state, these inputs).
-    fn probed_physics(&self, key: &ProbeKey) -> Option<(f64, f64)> {
+    /// What the last probe found, when it was made for `key` (this state, these inputs).
+    fn probe_for(&self, key: &ProbeKey) -> Option<Probed> {
         self.probed
             .get()
-            .and_then(|(k, (physics, _))| (k == *key).then_some(physics))
+            .and_then(|(k, probed)| (k == *key).then_some(probed))
     }
+}
+
+/// What the correction sees at host inputs `inputs` and the physics' current `physics`
+/// (i_re, i_im): its input vector, held inside its training range.
+fn correction_input(
+    correction: &CorrectionStepper,
+    frame: &PreFaultFrame,
+    inputs: &Inputs,
+    physics: (f64, f64),
+) -> [f64; crate::correction::N_INPUTS] {
+    correction.bounded(frame.input(inputs.v_re, inputs.v_im, inputs.f_grid, physics))
 }
 
 fn sample(inputs: &Inputs) -> Sample {
@@ -188,7 +198,7 @@ impl CoSimModel for HybridCoSim {
             });
         }
         let key = ProbeKey::new(self.epoch, inputs);
-        let probed = self.probed_physics(&key);
+        let probed = self.probe_for(&key).map(|(physics, _)| physics);
         let running = self
             .running
             .as_mut()
@@ -209,12 +219,7 @@ impl CoSimModel for HybridCoSim {
             }
         };
         // the correction first, on a copy: a failed step changes nothing
-        let u = self.correction.bounded(running.pre_fault.input(
-            inputs.v_re,
-            inputs.v_im,
-            inputs.f_grid,
-            physics,
-        ));
+        let u = correction_input(&self.correction, &running.pre_fault, inputs, physics);
         running.z_trial.copy_from_slice(&running.z);
         self.correction.step(&mut running.z_trial, &u, h_s);
         if running.z_trial.iter().any(|z| !z.is_finite()) {
@@ -253,21 +258,14 @@ impl CoSimModel for HybridCoSim {
             .as_ref()
             .ok_or(CoSimError::NotInitialised { call: "outputs" })?;
         let key = ProbeKey::new(self.epoch, inputs);
-        if let Some((k, (_, outputs))) = self.probed.get() {
-            if k == key {
-                return Ok(outputs);
-            }
+        if let Some((_, outputs)) = self.probe_for(&key) {
+            return Ok(outputs);
         }
         let [i_re, i_im, p, q] =
             running
                 .block
                 .peek(&self.model, sample(inputs), &mut self.probe.borrow_mut());
-        let u = self.correction.bounded(running.pre_fault.input(
-            inputs.v_re,
-            inputs.v_im,
-            inputs.f_grid,
-            (i_re, i_im),
-        ));
+        let u = correction_input(&self.correction, &running.pre_fault, inputs, (i_re, i_im));
         let (di_d, di_q) = self
             .correction
             .output(&running.z, &u, in_dip(inputs.v_re, inputs.v_im));

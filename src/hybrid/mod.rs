@@ -36,8 +36,8 @@ use std::path::{Path, PathBuf};
 use thiserror::Error;
 use understudy_runtime::block::{EvalConfig, OutputSeries, Template};
 use understudy_runtime::correction::{
-    in_dip, rows_of, Correction, CorrectionStepper, PreFault, CORRECTION_OUTPUTS, N_INPUTS,
-    PHYSICS_INPUTS,
+    in_dip, rows_of, Correction, CorrectionStepper, PreFault, PreFaultFrame, CORRECTION_OUTPUTS,
+    N_INPUTS, PHYSICS_INPUTS,
 };
 use understudy_runtime::cosim::{
     Bases, CoSimError, CoSimModel, Envelope, Inputs, ModelFile, ModelKind, Outputs, Setpoints,
@@ -344,6 +344,18 @@ impl Case {
         }
     }
 
+    /// The correction's raw input vector at sample `k` with the physics' outputs `physics` on
+    /// this case, in the pre-fault frame `pf` ([`PreFaultFrame::input`]).
+    fn correction_input(
+        &self,
+        pf: &PreFaultFrame,
+        physics: &OutputSeries<f64>,
+        k: usize,
+    ) -> [f64; N_INPUTS] {
+        let i = self.inputs(k);
+        pf.input(i.v_re, i.v_im, i.f_grid, (physics.i_re[k], physics.i_im[k]))
+    }
+
     fn inputs(&self, k: usize) -> Inputs {
         Inputs {
             v_re: self.data.v_re[k],
@@ -539,7 +551,7 @@ impl Structure {
     }
 }
 
-/// One candidate of the cross-validation (a ridge, with or without the dip map): mean NRMSE
+/// One candidate of the cross-validation (a structure and a ridge): mean NRMSE
 /// (% of rating) over the left-out traces and the four signals, for the correction as fitted
 /// and with its best output shrink.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -864,8 +876,8 @@ pub fn fit_hybrid(
     let poles = &pole_fit.poles;
     let per_input = free_run_correction(poles, &training, &residual_refs, &physics_refs, choice)?;
     let fitted_order = per_input.order();
-    // the same transfer function with one state per output and pole: what the FMU steps; a
-    // correction the cross-validation dropped entirely is exported as none at all
+    // the same transfer function with one state per output (of each map) and pole: what the FMU
+    // steps; a correction the cross-validation dropped entirely is exported as none at all
     let correction = if choice.shrink.iter().all(|&s| s == 0.0) {
         Correction::none()
     } else {
@@ -999,8 +1011,9 @@ fn free_run_correction(
         .map(|f| masked(f, structure))
         .collect();
     let all: Vec<&Features> = per_trace.iter().collect();
-    let theta = output_map(&all, ridge)?; // p × outputs
-                                          // rows of θ: [z, u] always, then [z, u] again for the dip (see `free_run_features`)
+    // θ: features × outputs, rows [z, u], then [z, u] again for the dip map when it is there
+    // (see `free_run_features` and `masked`)
+    let theta = output_map(&all, ridge)?;
     let outputs = CORRECTION_OUTPUTS.len();
     let part = |at: usize, cols: usize| {
         rows_of(&DMatrix::from_fn(outputs, cols, |k, i| {
@@ -1052,10 +1065,7 @@ fn correction_poles(
         let n = c.data.len();
         let series = DMatrix::from_fn(2, n, |ch, k| r[ch][k]);
         let pf = c.pre_fault().frame();
-        let u = DMatrix::from_fn(N_INPUTS, n, |row, k| {
-            let i = c.inputs(k);
-            pf.input(i.v_re, i.v_im, i.f_grid, (o.i_re[k], o.i_im[k]))[row]
-        });
+        let u = DMatrix::from_fn(N_INPUTS, n, |row, k| c.correction_input(&pf, o, k)[row]);
         let e = delay_embed(&series, &u, config.delays, 1)?;
         states.push(e.states);
         inputs.push(e.inputs);
@@ -1101,12 +1111,7 @@ fn input_range(cases: &[&Case], physics: &[&OutputSeries<f64>]) -> Vec<[f64; 2]>
     for (c, o) in cases.iter().zip(physics) {
         let pf = c.pre_fault().frame();
         for k in 0..c.data.len() {
-            let i = c.inputs(k);
-            for (r, x) in
-                range
-                    .iter_mut()
-                    .zip(pf.input(i.v_re, i.v_im, i.f_grid, (o.i_re[k], o.i_im[k])))
-            {
+            for (r, x) in range.iter_mut().zip(c.correction_input(&pf, o, k)) {
                 *r = [r[0].min(x), r[1].max(x)];
             }
         }
@@ -1181,10 +1186,8 @@ fn free_run_features(
             let mut phi = DMatrix::zeros(len, 2 * w);
             let mut z = vec![0.0; n];
             for k in 0..len {
-                let i = c.inputs(k);
-                let physics = (o.i_re[k], o.i_im[k]);
-                let u = stepper.bounded(pf.input(i.v_re, i.v_im, i.f_grid, physics));
-                let dip = in_dip(i.v_re, i.v_im);
+                let u = stepper.bounded(c.correction_input(&pf, o, k));
+                let dip = in_dip(c.data.v_re[k], c.data.v_im[k]);
                 for (col, v) in z.iter().chain(u.iter()).enumerate() {
                     phi[(k, col)] = *v;
                     if dip {
@@ -1280,9 +1283,9 @@ fn corrected_nrmse(
 }
 
 /// Leave-one-trace-out cross-validation of the correction (see [`CrossValidation`]) over the
-/// structures of the output map ([`Structure::ALL`]), the ridge candidates `ridges` and the output shrink
-/// factors [`SHRINK_CANDIDATES`]; the choice is the smallest mean NRMSE over the left-out
-/// traces (on a tie the smaller shrink, then the simpler structure and the larger ridge: the
+/// structures of the output map ([`Structure::ALL`]), the ridge candidates `ridges` and the
+/// output shrink factors [`SHRINK_CANDIDATES`]; the choice is the smallest mean NRMSE over the
+/// left-out traces (on a tie the smaller shrink, then the simpler structure and the larger ridge: the
 /// more cautious correction).
 fn cross_validate(
     training: &[&Case],
