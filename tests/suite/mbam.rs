@@ -410,6 +410,33 @@ fn geodesic_matches_scipy_solve_ivp_at_fixed_arc_length() {
     }
 }
 
+/// The rate k minimising Σ (a·e^{−k t} − y)² over `TIMES` for the published data
+/// y = e^{−t} + e^{−2t}: the root of the normal equation by bisection on [0.1, 3] (the sum is
+/// positive below the root and negative above it for both amplitudes used here).
+fn one_rate_minimiser(amplitude: f64) -> f64 {
+    let gradient = |k: f64| -> f64 {
+        TIMES
+            .iter()
+            .map(|&t| {
+                let y = (-t).exp() + (-2.0 * t).exp();
+                let e = (-k * t).exp();
+                (amplitude * e - y) * t * e
+            })
+            .sum()
+    };
+    let (mut lo, mut hi) = (0.1, 3.0);
+    assert!(gradient(lo) > 0.0 && gradient(hi) < 0.0);
+    for _ in 0..200 {
+        let mid = 0.5 * (lo + hi);
+        if gradient(mid) > 0.0 {
+            lo = mid;
+        } else {
+            hi = mid;
+        }
+    }
+    0.5 * (lo + hi)
+}
+
 #[test]
 fn two_exponential_reductions_refit_to_published_rates() {
     let model = TwoExp::published(false);
@@ -452,16 +479,26 @@ fn two_exponential_reductions_refit_to_published_rates() {
     // Transtrum & Qiu 2014 quote k ≈ 1.3936 (y = 2e^{-kt}) and k ≈ 0.6302 (y = e^{-kt})
     assert!((k_fold - 1.3936).abs() < 1e-4, "{k_fold}");
     assert!((k_drop - 0.6302).abs() < 1e-4, "{k_drop}");
+    // each refit sits at the minimiser of its one-parameter least-squares problem: the root of
+    // the normal equation Σ (a·e^{−k t} − y)·t·e^{−k t} = 0, found here by bisection
+    for (k, amplitude) in [(k_fold, 2.0), (k_drop, 1.0)] {
+        let exact = one_rate_minimiser(amplitude);
+        assert!(rel(k, exact) < 1e-9, "k = {k}, minimiser {exact}");
+    }
     if let Some(r) = reference() {
-        // scipy.optimize.least_squares(method="lm") of the reduced models to the same data
+        // scipy.optimize.least_squares(method="lm") of the reduced models to the same data.
+        // Its LM stops within ~1e-8 of the minimiser here (scipy 1.17.1 gives k = 0.63015973780
+        // for y = e^{−kt}, the minimiser is 0.63015973114 by a 50-digit bisection of the
+        // normal equation), so the rates are compared at 1e-7 and the costs, flat at the
+        // minimum, at 1e-8.
         let k = |key: &str| r[key].as_f64().unwrap();
         assert!(
-            rel(k_fold, k("k_fold")) < 1e-8,
+            rel(k_fold, k("k_fold")) < 1e-7,
             "{k_fold} vs {}",
             k("k_fold")
         );
         assert!(
-            rel(k_drop, k("k_drop")) < 1e-8,
+            rel(k_drop, k("k_drop")) < 1e-7,
             "{k_drop} vs {}",
             k("k_drop")
         );
