@@ -311,6 +311,43 @@ pub fn zoh(a: &DMatrix<f64>, b: &DMatrix<f64>, h_s: f64) -> (DMatrix<f64>, DMatr
     )
 }
 
+/// [`zoh`] one diagonal block of A at a time: a block-diagonal A (a modal correction: 1×1 and
+/// 2×2 blocks) gives a block-diagonal Φ and a Γ whose rows of one block depend only on that
+/// block, so the exponential of each small augmented matrix replaces one of order (n + inputs).
+/// The same discretisation (each block is exact to rounding); far cheaper when a host's step
+/// is not the one discretised at instantiation.
+pub fn zoh_blockwise(a: &DMatrix<f64>, b: &DMatrix<f64>, h_s: f64) -> (DMatrix<f64>, DMatrix<f64>) {
+    let (n, l) = (a.nrows(), b.ncols());
+    let mut phi = DMatrix::zeros(n, n);
+    let mut gamma = DMatrix::zeros(n, l);
+    let mut start = 0;
+    while start < n {
+        // grow the block until no entry couples it to a later state
+        let mut end = start;
+        let mut k = start;
+        while k <= end {
+            for j in (end + 1..n).rev() {
+                #[allow(clippy::float_cmp)] // structural zeros
+                if a[(k, j)] != 0.0 || a[(j, k)] != 0.0 {
+                    end = end.max(j);
+                    break;
+                }
+            }
+            k += 1;
+        }
+        let size = end + 1 - start;
+        let (p, g) = zoh(
+            &a.view((start, start), (size, size)).into_owned(),
+            &b.view((start, 0), (size, l)).into_owned(),
+            h_s,
+        );
+        phi.view_mut((start, start), (size, size)).copy_from(&p);
+        gamma.view_mut((start, 0), (size, l)).copy_from(&g);
+        start = end + 1;
+    }
+    (phi, gamma)
+}
+
 /// Matrix exponential by scaling and squaring with the diagonal [6/6] Padé approximant
 /// (Moler & Van Loan, SIAM Review 45(1), 2003, "Method 3"; Golub & Van Loan, Matrix
 /// Computations, Algorithm 9.3.1). Scaled to ‖X‖₁ ≤ 1/2, where the [6/6] truncation error is
@@ -361,16 +398,46 @@ pub fn expm(m: &DMatrix<f64>) -> DMatrix<f64> {
 pub struct CorrectionStepper {
     a: DMatrix<f64>,
     b: DMatrix<f64>,
-    /// C (2 × order) and D (2 × inputs), row-major
-    c: Vec<f64>,
-    d: Vec<f64>,
-    /// C_dip and D_dip, row-major; empty when the correction has none
-    c_dip: Vec<f64>,
-    d_dip: Vec<f64>,
+    /// the rows of C and D (Δi_d, Δi_q), without their exact zeros
+    rows: [OutputRow; 2],
+    /// the rows of C_dip and D_dip; `None` when the correction has no dip map
+    dip_rows: Option<[OutputRow; 2]>,
     cache: Option<Discrete>,
     /// scratch for the next state
     next: Vec<f64>,
     range: Option<[[f64; 2]; N_INPUTS]>,
+}
+
+/// One output row (of C with D, or of C_dip with D_dip) without its exact zeros: a modal
+/// realisation gives each output its own states, so most of a row of C is zero.
+#[derive(Debug, Clone)]
+struct OutputRow {
+    /// (state, coefficient) of the nonzero entries of the row of C
+    states: Vec<(usize, f64)>,
+    /// (input, coefficient) of the nonzero entries of the row of D
+    inputs: Vec<(usize, f64)>,
+}
+
+impl OutputRow {
+    #[allow(clippy::float_cmp)] // an exact zero contributes exactly nothing (z and u are finite)
+    fn new(c: &DMatrix<f64>, d: &DMatrix<f64>, k: usize) -> Self {
+        let nonzero = |row: Vec<f64>| -> Vec<(usize, f64)> {
+            row.into_iter()
+                .enumerate()
+                .filter(|(_, v)| *v != 0.0)
+                .collect()
+        };
+        Self {
+            states: nonzero(c.row(k).iter().copied().collect()),
+            inputs: nonzero(d.row(k).iter().copied().collect()),
+        }
+    }
+
+    fn value(&self, z: &[f64], u: &[f64; N_INPUTS]) -> f64 {
+        let cz: f64 = self.states.iter().map(|&(i, c)| c * z[i]).sum();
+        let du: f64 = self.inputs.iter().map(|&(j, d)| d * u[j]).sum();
+        du + cz
+    }
 }
 
 /// Φ(h) and Γ(h) of one step size, stored for a cheap step: Φ without its exact zeros (a
@@ -381,7 +448,10 @@ pub struct CorrectionStepper {
 struct Discrete {
     h: f64,
     phi: Phi,
-    /// input j's column of Γ is `gamma_cols[j * order..(j + 1) * order]`
+    /// the inputs whose column of Γ is not all exact zeros (an input the correction does not
+    /// use, e.g. the physics' current in a voltage-only structure, costs nothing)
+    active: Vec<usize>,
+    /// the k-th active input's column of Γ is `gamma_cols[k * order..(k + 1) * order]`
     gamma_cols: Vec<f64>,
 }
 
@@ -404,7 +474,7 @@ enum Phi {
 
 impl Discrete {
     fn new(a: &DMatrix<f64>, b: &DMatrix<f64>, h: f64) -> Self {
-        let (phi, gamma) = zoh(a, b, h);
+        let (phi, gamma) = zoh_blockwise(a, b, h);
         let n = phi.nrows();
         // an exact zero contributes exactly nothing (the states are finite)
         #[allow(clippy::float_cmp)]
@@ -436,11 +506,21 @@ impl Discrete {
             }
             Phi::Sparse { row, col, val }
         };
-        let gamma_cols = (0..N_INPUTS)
-            .flat_map(|j| (0..n).map(move |i| (i, j)))
+        #[allow(clippy::float_cmp)] // an exact zero contributes exactly nothing
+        let active: Vec<usize> = (0..N_INPUTS)
+            .filter(|&j| (0..n).any(|i| gamma[(i, j)] != 0.0))
+            .collect();
+        let gamma_cols = active
+            .iter()
+            .flat_map(|&j| (0..n).map(move |i| (i, j)))
             .map(|(i, j)| gamma[(i, j)])
             .collect();
-        Self { h, phi, gamma_cols }
+        Self {
+            h,
+            phi,
+            active,
+            gamma_cols,
+        }
     }
 
     /// Entries of Φ a step multiplies.
@@ -456,32 +536,9 @@ impl Discrete {
     }
 }
 
-/// Σ aₖ·bₖ with four independent partial sums (no single chain of additions).
-fn dot(a: &[f64], b: &[f64]) -> f64 {
-    let mut acc = [0.0; 4];
-    let (a4, b4) = (a.chunks_exact(4), b.chunks_exact(4));
-    let tail: f64 = a4
-        .remainder()
-        .iter()
-        .zip(b4.remainder())
-        .map(|(x, y)| x * y)
-        .sum();
-    for (x, y) in a4.zip(b4) {
-        for k in 0..4 {
-            acc[k] += x[k] * y[k];
-        }
-    }
-    (acc[0] + acc[1]) + (acc[2] + acc[3]) + tail
-}
-
 impl CorrectionStepper {
     pub fn new(correction: &Correction) -> Result<Self, CorrectionError> {
         let (a, b, c, d) = correction.matrices()?;
-        let row_major = |m: &DMatrix<f64>| {
-            (0..m.nrows())
-                .flat_map(|i| m.row(i).iter().copied().collect::<Vec<_>>())
-                .collect()
-        };
         let range = match correction.input_range.len() {
             0 => None,
             N_INPUTS => Some(std::array::from_fn(|j| correction.input_range[j])),
@@ -505,19 +562,17 @@ impl CorrectionStepper {
                 ),
             });
         }
-        let (c_dip, d_dip) = if correction.c_dip.is_empty() && correction.d_dip.is_empty() {
-            (Vec::new(), Vec::new())
+        let dip_rows = if correction.c_dip.is_empty() && correction.d_dip.is_empty() {
+            None
         } else {
             let (c_dip, d_dip) = correction.dip_matrices()?;
-            (row_major(&c_dip), row_major(&d_dip))
+            Some([0, 1].map(|k| OutputRow::new(&c_dip, &d_dip, k)))
         };
         Ok(Self {
             range,
-            c_dip,
-            d_dip,
+            dip_rows,
             next: vec![0.0; a.nrows()],
-            c: row_major(&c),
-            d: row_major(&d),
+            rows: [0, 1].map(|k| OutputRow::new(&c, &d, k)),
             a,
             b,
             cache: None,
@@ -544,24 +599,49 @@ impl CorrectionStepper {
         self.cache.as_ref().map(Discrete::phi_entries)
     }
 
+    /// Discretise for steps of `h_s` now (the matrix exponential), so that the first step of
+    /// that size costs no more than the others: an FMU does it at instantiation for its
+    /// natural step. A later step of another size discretises again.
+    pub fn prepare(&mut self, h_s: f64) {
+        if self.order() == 0 {
+            return;
+        }
+        let fresh = !matches!(&self.cache, Some(d) if (d.h - h_s).abs() <= 1e-9 * d.h.abs());
+        if fresh {
+            self.cache = Some(Discrete::new(&self.a, &self.b, h_s));
+        }
+    }
+
     /// z ← Φ(h) z + Γ(h) u: exact for an input held over the step. Allocates nothing once the
     /// step size is cached.
     pub fn step(&mut self, z: &mut [f64], u: &[f64; N_INPUTS], h_s: f64) {
+        let mut next = std::mem::take(&mut self.next);
+        self.step_from(z, &mut next, u, h_s);
+        z.copy_from_slice(&next);
+        self.next = next;
+    }
+
+    /// `next` ← Φ(h) z + Γ(h) u (as [`CorrectionStepper::step`], into another slice); whether
+    /// every entry of `next` is finite.
+    pub fn step_from(
+        &mut self,
+        z: &[f64],
+        next: &mut [f64],
+        u: &[f64; N_INPUTS],
+        h_s: f64,
+    ) -> bool {
         let n = self.order();
         assert_eq!(z.len(), n, "correction state length");
+        assert_eq!(next.len(), n, "correction state length");
         if n == 0 {
-            return;
+            return true;
         }
         // A host's step computed as t[k+1] − t[k] differs from step to step in the last bits;
         // recomputing the matrix exponential for each would cost far more than the step itself.
         // Steps within a relative 1e-9 of the cached one reuse it (the resulting change in Φ is
         // of the order 1e-9·‖A‖·h, far below the correction's own accuracy).
-        let fresh = !matches!(&self.cache, Some(d) if (d.h - h_s).abs() <= 1e-9 * d.h.abs());
-        if fresh {
-            self.cache = Some(Discrete::new(&self.a, &self.b, h_s));
-        }
-        let d = self.cache.as_ref().expect("filled above");
-        let next = &mut self.next;
+        self.prepare(h_s);
+        let d = self.cache.as_ref().expect("filled by prepare");
         match &d.phi {
             Phi::Tridiagonal { lower, diag, upper } => {
                 for ((x, p), zi) in next.iter_mut().zip(diag).zip(z.iter()) {
@@ -584,45 +664,36 @@ impl CorrectionStepper {
                 }
             }
         }
-        // Γu, four states at a time with their sums held in registers across the inputs
-        let g = &d.gamma_cols;
-        let mut i = 0;
-        while i + 4 <= n {
-            let mut acc = [next[i], next[i + 1], next[i + 2], next[i + 3]];
-            for (j, uj) in u.iter().enumerate() {
-                let col = &g[j * n + i..j * n + i + 4];
-                for k in 0..4 {
-                    acc[k] += col[k] * uj;
-                }
-            }
-            next[i..i + 4].copy_from_slice(&acc);
-            i += 4;
-        }
-        for (r, x) in next.iter_mut().enumerate().skip(i) {
-            for (j, uj) in u.iter().enumerate() {
-                *x += g[j * n + r] * uj;
+        // Γu, one active input's column at a time (independent sums over the states: they
+        // vectorise)
+        for (&j, col) in d.active.iter().zip(d.gamma_cols.chunks_exact(n)) {
+            let uj = u[j];
+            for (x, g) in next.iter_mut().zip(col) {
+                *x += g * uj;
             }
         }
         // a mode that has died away is set to exactly zero before it reaches the subnormal
         // range, where every operation on it costs ~100 times more (the state is in per unit:
         // below 1e-150 it carries nothing)
-        for (zi, x) in z.iter_mut().zip(next.iter()) {
-            *zi = if x.abs() < 1e-150 { 0.0 } else { *x };
+        let mut finite = true;
+        for x in next.iter_mut() {
+            finite &= x.is_finite();
+            if x.abs() < 1e-150 {
+                *x = 0.0;
+            }
         }
+        finite
     }
 
     /// Δy = C z + D u, plus C_dip z + D_dip u when `in_dip` (see [`in_dip`]): (Δi_d, Δi_q) in
     /// the pre-fault frame.
     pub fn output(&self, z: &[f64], u: &[f64; N_INPUTS], in_dip: bool) -> (f64, f64) {
-        let n = self.order();
-        assert_eq!(z.len(), n, "correction state length");
-        let row = |c: &[f64], d: &[f64], k: usize| {
-            dot(&d[k * N_INPUTS..(k + 1) * N_INPUTS], u) + dot(&c[k * n..(k + 1) * n], z)
-        };
-        let (mut d, mut q) = (row(&self.c, &self.d, 0), row(&self.c, &self.d, 1));
-        if in_dip && !self.c_dip.is_empty() {
-            d += row(&self.c_dip, &self.d_dip, 0);
-            q += row(&self.c_dip, &self.d_dip, 1);
+        assert_eq!(z.len(), self.order(), "correction state length");
+        let [rd, rq] = &self.rows;
+        let (mut d, mut q) = (rd.value(z, u), rq.value(z, u));
+        if let (true, Some([dd, dq])) = (in_dip, &self.dip_rows) {
+            d += dd.value(z, u);
+            q += dq.value(z, u);
         }
         (d, q)
     }
@@ -653,6 +724,31 @@ mod tests {
         );
         assert!((phi[(0, 0)] - (-1e-3 / t).exp()).abs() < 1e-15);
         assert!((gamma[(0, 0)] + (-1e-3 / t).exp_m1()).abs() < 1e-15);
+    }
+
+    #[test]
+    fn blockwise_zoh_equals_the_whole_exponential() {
+        // a modal A (a 2×2 block, a 1×1 block, a 2×2 block) and a dense B: discretising block by
+        // block gives the exponential of the whole augmented matrix to rounding (Φ is block
+        // diagonal, Γ's rows of a block depend only on that block); and a coupled A is one block
+        let a = DMatrix::from_row_slice(
+            5,
+            5,
+            &[
+                -3.0, 40.0, 0.0, 0.0, 0.0, //
+                -40.0, -3.0, 0.0, 0.0, 0.0, //
+                0.0, 0.0, -12.0, 0.0, 0.0, //
+                0.0, 0.0, 0.0, -150.0, 300.0, //
+                0.0, 0.0, 0.0, -300.0, -150.0,
+            ],
+        );
+        let b = DMatrix::from_fn(5, 3, |i, j| ((i * 3 + j) as f64 * 0.7).sin());
+        for (a, label) in [(a.clone(), "modal"), (a.map(|x| x + 0.5), "coupled")] {
+            let (p1, g1) = zoh(&a, &b, 2e-3);
+            let (p2, g2) = zoh_blockwise(&a, &b, 2e-3);
+            assert!((&p1 - &p2).abs().max() < 1e-14, "{label}: Φ");
+            assert!((&g1 - &g2).abs().max() < 1e-14, "{label}: Γ");
+        }
     }
 
     #[test]

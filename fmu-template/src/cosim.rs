@@ -537,7 +537,12 @@ impl ModelFile {
                 correction,
                 ..
             } => Ok(LoadedModel::Hybrid(Box::new(
-                crate::hybrid::HybridCoSim::new(template, *internal_step_s, correction)?,
+                crate::hybrid::HybridCoSim::new(
+                    template,
+                    *internal_step_s,
+                    correction,
+                    self.communication_step_s,
+                )?,
             ))),
         }
     }

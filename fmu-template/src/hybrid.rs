@@ -94,10 +94,13 @@ pub struct HybridRunning {
 }
 
 impl HybridCoSim {
+    /// `communication_step_s`: the host step the model expects (its natural step); the
+    /// correction is discretised for it here, not in the first step.
     pub fn new(
         template: &Template,
         internal_step_s: f64,
         correction: &Correction,
+        communication_step_s: f64,
     ) -> Result<Self, CoSimError> {
         let model = BlockModel::compile(template)
             .map_err(|e| CoSimError::ModelFile(format!("hybrid template: {e}")))?;
@@ -108,8 +111,11 @@ impl HybridCoSim {
                 expected: "an internal step > 0 s".into(),
             });
         }
-        let correction =
+        let mut correction =
             CorrectionStepper::new(correction).map_err(|e| CoSimError::ModelFile(e.to_string()))?;
+        if communication_step_s.is_finite() && communication_step_s > 0.0 {
+            correction.prepare(communication_step_s);
+        }
         Ok(Self {
             free: model.free_parameter_values(),
             probe: RefCell::new(Vec::with_capacity(model.signal_names().len())),
@@ -220,9 +226,10 @@ impl CoSimModel for HybridCoSim {
         };
         // the correction first, on a copy: a failed step changes nothing
         let u = correction_input(&self.correction, &running.pre_fault, inputs, physics);
-        running.z_trial.copy_from_slice(&running.z);
-        self.correction.step(&mut running.z_trial, &u, h_s);
-        if running.z_trial.iter().any(|z| !z.is_finite()) {
+        let finite = self
+            .correction
+            .step_from(&running.z, &mut running.z_trial, &u, h_s);
+        if !finite {
             return Err(CoSimError::BadValue {
                 field: "correction state".into(),
                 value: f64::NAN,

@@ -1209,6 +1209,7 @@ impl<S: Scalar> BlockRun<S> {
     }
 
     /// Output of a feedthrough block from the signals `sig` and the states of this step.
+    #[inline(always)]
     fn algebraic(&self, model: &BlockModel, sig: &mut [S], bi: usize) {
         let b = &model.blocks[bi];
         let out = b.out;
