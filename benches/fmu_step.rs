@@ -156,88 +156,71 @@ unsafe fn run_fmu(
     let name = CString::new("bench").unwrap();
     let token = CString::new(token).unwrap();
     let path = CString::new(format!("{}/", root.join("resources").display())).unwrap();
-    let setup = Instant::now();
-    let i = instantiate(
-        name.as_ptr(),
-        token.as_ptr(),
-        path.as_ptr(),
-        false,
-        false,
-        false,
-        false,
-        std::ptr::null(),
-        0,
-        std::ptr::null_mut(),
-        Some(quiet),
-        std::ptr::null(),
-    );
-    assert!(!i.is_null());
-    let refs = [vr::V_RE, vr::V_IM];
-    let v0 = C64::new(1.0, 0.0);
-    let vf = C64::new(fault.retained, 0.0);
-    assert_eq!(enter(i, false, 0.0, 0.0, false, 0.0), 0);
-    assert_eq!(set(i, refs.as_ptr(), 2, [v0.re, v0.im].as_ptr(), 2), 0);
-    assert_eq!(exit(i), 0);
-    let setup_s = setup.elapsed().as_secs_f64();
     let get: libloading::Symbol<
         unsafe extern "C" fn(Inst, *const u32, usize, *mut f64, usize) -> i32,
     > = lib.get(b"fmi3GetFloat64\0").unwrap();
+    let refs = [vr::V_RE, vr::V_IM];
     let outs = [vr::I_RE, vr::I_IM, vr::P, vr::Q];
-    let mut y = [0.0; 4];
+    let v0 = C64::new(1.0, 0.0);
+    let vf = C64::new(fault.retained, 0.0);
+    // a new instance, initialised at the pre-fault voltage
+    let start = || {
+        let i = instantiate(
+            name.as_ptr(),
+            token.as_ptr(),
+            path.as_ptr(),
+            false,
+            false,
+            false,
+            false,
+            std::ptr::null(),
+            0,
+            std::ptr::null_mut(),
+            Some(quiet),
+            std::ptr::null(),
+        );
+        assert!(!i.is_null());
+        assert_eq!(enter(i, false, 0.0, 0.0, false, 0.0), 0);
+        assert_eq!(set(i, refs.as_ptr(), 2, [v0.re, v0.im].as_ptr(), 2), 0);
+        assert_eq!(exit(i), 0);
+        i
+    };
     let n = (duration_s / h).round() as usize;
-    let voltage = |t: f64| {
-        if (fault.start_s..fault.start_s + fault.duration_s).contains(&t) {
-            vf
-        } else {
-            v0
+    // a host's loop over the whole run; with `timed`, each doStep's wall time is pushed there
+    let run = |i: Inst, mut timed: Option<&mut Vec<f64>>| {
+        let mut y = [0.0; 4];
+        for k in 0..n {
+            let t = k as f64 * h;
+            let v = if (fault.start_s..fault.start_s + fault.duration_s).contains(&t) {
+                vf
+            } else {
+                v0
+            };
+            assert_eq!(set(i, refs.as_ptr(), 2, [v.re, v.im].as_ptr(), 2), 0);
+            assert_eq!(get(i, outs.as_ptr(), 4, y.as_mut_ptr(), 4), 0);
+            let (mut a, mut b, mut c, mut last) = (false, false, false, 0.0);
+            let clock = timed.is_some().then(Instant::now);
+            let s = do_step(i, t, h, true, &mut a, &mut b, &mut c, &mut last);
+            if let (Some(times), Some(clock)) = (timed.as_deref_mut(), clock) {
+                times.push(clock.elapsed().as_secs_f64());
+            }
+            assert_eq!(s, 0, "fmi3DoStep failed at t = {t} s");
         }
+        std::hint::black_box(y);
     };
     // the rate: a host's loop with nothing else in it
+    let setup = Instant::now();
+    let i = start();
+    let setup_s = setup.elapsed().as_secs_f64();
     let wall = Instant::now();
-    for k in 0..n {
-        let t = k as f64 * h;
-        let v = voltage(t);
-        assert_eq!(set(i, refs.as_ptr(), 2, [v.re, v.im].as_ptr(), 2), 0);
-        assert_eq!(get(i, outs.as_ptr(), 4, y.as_mut_ptr(), 4), 0);
-        let (mut a, mut b, mut c, mut last) = (false, false, false, 0.0);
-        let s = do_step(i, t, h, true, &mut a, &mut b, &mut c, &mut last);
-        assert_eq!(s, 0, "fmi3DoStep failed at t = {t} s");
-    }
+    run(i, None);
     let total = wall.elapsed().as_secs_f64();
-    std::hint::black_box(y);
     free(i);
     // the median fmi3DoStep: the same run again in a new instance, each doStep timed (the
     // clock reads stay out of the rate above)
-    let i = instantiate(
-        name.as_ptr(),
-        token.as_ptr(),
-        path.as_ptr(),
-        false,
-        false,
-        false,
-        false,
-        std::ptr::null(),
-        0,
-        std::ptr::null_mut(),
-        Some(quiet),
-        std::ptr::null(),
-    );
-    assert!(!i.is_null());
-    assert_eq!(enter(i, false, 0.0, 0.0, false, 0.0), 0);
-    assert_eq!(set(i, refs.as_ptr(), 2, [v0.re, v0.im].as_ptr(), 2), 0);
-    assert_eq!(exit(i), 0);
+    let i = start();
     let mut per_call = Vec::with_capacity(n);
-    for k in 0..n {
-        let t = k as f64 * h;
-        let v = voltage(t);
-        assert_eq!(set(i, refs.as_ptr(), 2, [v.re, v.im].as_ptr(), 2), 0);
-        assert_eq!(get(i, outs.as_ptr(), 4, y.as_mut_ptr(), 4), 0);
-        let (mut a, mut b, mut c, mut last) = (false, false, false, 0.0);
-        let start = Instant::now();
-        let s = do_step(i, t, h, true, &mut a, &mut b, &mut c, &mut last);
-        per_call.push(start.elapsed().as_secs_f64());
-        assert_eq!(s, 0, "fmi3DoStep failed at t = {t} s");
-    }
+    run(i, Some(&mut per_call));
     free(i);
     per_call.sort_by(f64::total_cmp);
     Measured {
