@@ -606,6 +606,10 @@ impl CorrectionStepper {
         if self.order() == 0 {
             return;
         }
+        // A host's step computed as t[k+1] − t[k] differs from step to step in the last bits;
+        // recomputing the matrix exponential for each would cost far more than the step itself.
+        // Steps within a relative 1e-9 of the cached one reuse it (the resulting change in Φ is
+        // of the order 1e-9·‖A‖·h, far below the correction's own accuracy).
         let fresh = !matches!(&self.cache, Some(d) if (d.h - h_s).abs() <= 1e-9 * d.h.abs());
         if fresh {
             self.cache = Some(Discrete::new(&self.a, &self.b, h_s));
@@ -636,10 +640,6 @@ impl CorrectionStepper {
         if n == 0 {
             return true;
         }
-        // A host's step computed as t[k+1] − t[k] differs from step to step in the last bits;
-        // recomputing the matrix exponential for each would cost far more than the step itself.
-        // Steps within a relative 1e-9 of the cached one reuse it (the resulting change in Φ is
-        // of the order 1e-9·‖A‖·h, far below the correction's own accuracy).
         self.prepare(h_s);
         let d = self.cache.as_ref().expect("filled by prepare");
         match &d.phi {

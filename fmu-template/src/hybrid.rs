@@ -41,8 +41,9 @@ pub struct HybridCoSim {
     epoch: u64,
 }
 
-/// What a probe found: the physics' current (i_re, i_im) and the hybrid's outputs.
-type Probed = ((f64, f64), Outputs);
+/// What a probe found: the correction's input vector (from the inputs and the physics'
+/// current, bounded) and the hybrid's outputs.
+type Probed = ([f64; crate::correction::N_INPUTS], Outputs);
 
 /// The state (by its epoch) and the exact inputs a probe was evaluated at.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -204,16 +205,16 @@ impl CoSimModel for HybridCoSim {
             });
         }
         let key = ProbeKey::new(self.epoch, inputs);
-        let probed = self.probe_for(&key).map(|(physics, _)| physics);
+        let probed = self.probe_for(&key).map(|(u, _)| u);
         let running = self
             .running
             .as_mut()
             .ok_or(CoSimError::NotInitialised { call: "do_step" })?;
-        // the physics' current at this sample is an input of the correction: from the probe
-        // a get left at this state and these inputs, or from a probe made here (which the
+        // the physics' current at this sample is an input of the correction: the input vector
+        // a get left at this state and these inputs, or one from a probe made here (which the
         // first block step then takes over, so it costs no extra evaluation)
-        let physics = match probed {
-            Some(p) => p,
+        let u = match probed {
+            Some(u) => u,
             None => {
                 // the probe's signals change: an earlier probe no longer stands behind them
                 self.probed.set(None);
@@ -221,11 +222,10 @@ impl CoSimModel for HybridCoSim {
                     running
                         .block
                         .peek(&self.model, sample(inputs), self.probe.get_mut());
-                (i_re, i_im)
+                correction_input(&self.correction, &running.pre_fault, inputs, (i_re, i_im))
             }
         };
         // the correction first, on a copy: a failed step changes nothing
-        let u = correction_input(&self.correction, &running.pre_fault, inputs, physics);
         let finite = self
             .correction
             .step_from(&running.z, &mut running.z_trial, &u, h_s);
@@ -279,7 +279,7 @@ impl CoSimModel for HybridCoSim {
         let (di_re, di_im) = running.pre_fault.to_network(di_d, di_q);
         let outputs =
             Outputs { i_re, i_im, p, q }.plus_current(inputs.v_re, inputs.v_im, di_re, di_im);
-        self.probed.set(Some((key, ((i_re, i_im), outputs))));
+        self.probed.set(Some((key, (u, outputs))));
         Ok(outputs)
     }
 
